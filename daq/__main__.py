@@ -1,0 +1,3 @@
+from daq.cli import main
+
+raise SystemExit(main())
