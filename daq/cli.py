@@ -1,0 +1,64 @@
+"""The ``modetick`` command: one subcommand per module ``daq.cmd_<name>``.
+
+Each module has ``HELP``, ``configure(parser)`` and ``run(args) -> int``.
+Exit codes: 0 done, 1 device fault or failed check, 2 bad input (rig file,
+log, CSV, arguments), 130/143 stopped by SIGINT/SIGTERM.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from daq import __version__
+
+COMMANDS = [
+    "sweep",
+    "analyze",
+    "simulate",
+    "ports",
+    "check",
+]
+
+SAFETY = ("Laser safety: grating-tuned diode lasers are often Class 3B or 4 and often infrared "
+          "(invisible). Wear eyewear rated for the wavelength, block the beam, never view it or "
+          "its reflections, and follow your laser safety officer and local rules "
+          "(IEC 60825-1, ANSI Z136.1). modetick never changes drive current or temperature "
+          "unless a rig file explicitly allows it within set limits.")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="modetick",
+        description="Sweep a grating-tuned diode laser, count the chip's longitudinal modes live, "
+                    "and report mode spacing and chip length with uncertainty.",
+        epilog=SAFETY)
+    parser.add_argument("--version", action="version", version=f"modetick {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name in COMMANDS:
+        try:
+            mod = importlib.import_module(f"daq.cmd_{name}")
+        except ModuleNotFoundError as exc:
+            if exc.name == f"daq.cmd_{name}":
+                continue  # a command whose module has not landed yet
+            raise
+        p = sub.add_parser(name, help=mod.HELP, description=mod.HELP, epilog=SAFETY)
+        mod.configure(p)
+        p.set_defaults(_run=mod.run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "_run", None):
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        return int(args._run(args) or 0)
+    except BrokenPipeError:
+        return 1
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

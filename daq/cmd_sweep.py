@@ -1,0 +1,208 @@
+"""``modetick sweep``: run a sweep, count modes live, log everything, summarise."""
+from __future__ import annotations
+
+import json
+import signal
+import sys
+import threading
+from pathlib import Path
+
+from daq.errors import fail
+from daq.rig import RigError, load_rig
+from daq.runlog import LogError, RunLog, default_log_path
+
+HELP = "run a sweep (the simulated rig unless --config names another) and count modes live"
+
+# Exit codes for a run stopped by a signal: 128 + signal number (shell convention).
+EXIT_FOR_SIGNAL = {signal.SIGINT: 130, signal.SIGTERM: 143}
+
+
+def configure(p) -> None:
+    p.add_argument("--config", metavar="RIG", help="rig file (TOML); default: the simulated rig configs/sim.toml")
+    p.add_argument("--log", metavar="FILE", help="run log to write (SQLite); default runs/<UTC time>.db")
+    p.add_argument("--json", action="store_true", help="print the summary as one JSON object on stdout")
+    p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                   help="override a rig-file key for this run (repeatable)")
+    p.add_argument("--resume", metavar="LOG", help="continue an interrupted run from its log")
+    p.add_argument("--plain", action="store_true", help="plain progress lines even on a terminal")
+
+
+class SignalStop:
+    """First SIGINT/SIGTERM: finish the step, stop, exit 128+n. Second: abort now."""
+
+    def __init__(self, state):
+        self.signum: int | None = None
+        self.state = state
+        self._old = {}
+
+    def __call__(self, signum, frame) -> None:
+        if self.signum is not None:
+            raise KeyboardInterrupt
+        self.signum = signum
+        self.state.status = "stopping"
+
+    def request(self) -> None:
+        if self.signum is None:
+            self.signum = signal.SIGINT
+            self.state.status = "stopping"
+
+    def __enter__(self):
+        for s in EXIT_FOR_SIGNAL:
+            self._old[s] = signal.signal(s, self)
+        return self
+
+    def __exit__(self, *exc):
+        for s, h in self._old.items():
+            signal.signal(s, h)
+        return False
+
+
+def _calibration_view(sections):
+    """callable(spacing_steps, u) -> dict for the dashboard, or None when uncalibrated."""
+    try:
+        from analysis.physics import live_calibration
+    except ImportError:
+        return None
+    return lambda sp, u: live_calibration(sp, u, sections)
+
+
+def run(args) -> int:
+    from analysis.counter import StreamCounter
+    from daq import schedule
+    from daq.dashboard import KeyReader, PlainView, TerminalView
+    from daq.engine import Engine, LiveState
+    from daq.summary import build_summary
+    from drivers.base import DeviceError
+    from drivers.registry import open_devices
+
+    resume_log = None
+    try:
+        if args.resume:
+            if args.config or args.log:
+                return fail("--resume takes the rig and the log from LOG; leave out --config and --log", 2)
+            resume_log = RunLog.open(args.resume, writable=True)
+            rig = resume_log.rig()
+            if args.set:
+                from daq.rig import parse_rig
+                rig = parse_rig(rig.text, rig.source, rig.overrides + args.set)
+        else:
+            rig = load_rig(args.config, args.set)
+    except (RigError, LogError) as exc:
+        return fail(exc, 2)
+
+    state = LiveState()
+    stopper = SignalStop(state)
+    pause = threading.Event()
+    try:
+        stage, detector, bench = open_devices(rig.sections)
+    except DeviceError as exc:
+        return fail(exc, 1)
+    except OSError as exc:
+        return fail(f"cannot open devices: {exc}", 1)
+
+    status, reason, code = "finished", "", 0
+    log = None
+    try:
+        if resume_log is not None:
+            log = resume_log
+            counter = _resumed_counter(log, StreamCounter)
+            skip = log.n_samples
+        else:
+            path = Path(args.log) if args.log else default_log_path()
+            log = RunLog.create(path, rig)
+            counter = StreamCounter(rig["counter"])
+            skip = 0
+        state.log_path = str(log.path)
+        state.calib = _calibration_view(rig.sections)
+        t0 = 0.0
+        if skip:
+            s_last = log.read_samples()
+            t0 = float(s_last.t_s[-1]) if len(s_last) else 0.0
+        engine = Engine(rig, stage, detector, counter, log, state,
+                        stop_flag=lambda: stopper.signum is not None, pause_flag=pause, t0_s=t0)
+        if skip:
+            if skip >= schedule.recorded_count(rig["sweep"]):
+                return fail(f"log {log.path}: the run is already complete", 2)
+            _reapproach(stage, rig, skip)
+            engine.note("status", f"resumed after {skip} samples")
+        log.set_meta(status="running")
+        tty = sys.stdout.isatty() and not args.json and not args.plain
+        view = TerminalView(state) if tty else PlainView(state)
+        keys = KeyReader(pause, stopper.request) if tty else None
+        with stopper, view:
+            if keys:
+                with keys:
+                    status = engine.run(skip)
+            else:
+                status = engine.run(skip)
+        if status == "stopped":
+            code = EXIT_FOR_SIGNAL.get(stopper.signum, 130)
+            reason = f"stopped by {signal.Signals(stopper.signum).name}"
+    except KeyboardInterrupt:
+        status, reason, code = "aborted", "aborted by a second interrupt", 130
+    except DeviceError as exc:
+        status, reason, code = "faulted", str(exc), 1
+        if log is not None:
+            log.append_events([(log.n_samples, state.t_s, "fault", state.position_steps,
+                                None, None, None, None, reason)], commit=True)
+    except LogError as exc:
+        return fail(exc, 2)
+    finally:
+        _safe_stop(stage, detector)
+
+    state.status = status
+    summary = build_summary(log, rig.sections, status, counter=counter, bench=bench, reason=reason)
+    log.finish(status, summary, reason)
+    log.close()
+    if args.json:
+        print(json.dumps(summary, indent=None))
+    else:
+        _print_table(summary)
+    if code == 1:
+        fail(reason, 1)
+    return code
+
+
+def _resumed_counter(log, cls):
+    blob = log.meta("counter_state")
+    if not blob:
+        raise LogError(f"log {log.path}: holds no counter state to resume from")
+    return cls.from_state(json.loads(blob))
+
+
+def _reapproach(stage, rig, skip: int) -> None:
+    """Move to the resume point from the sweep's direction, taking up backlash."""
+    from daq import schedule
+    nxt = next(schedule.moves(rig["sweep"], skip))
+    takeup = max(rig["sweep"]["overshoot_steps"], 2 * rig["sweep"]["step"], 50)
+    back = nxt.target_steps - nxt.direction * takeup
+    lo, hi = rig["stage"]["min_steps"], rig["stage"]["max_steps"]
+    if lo is not None:
+        back = max(back, lo)
+    if hi is not None:
+        back = min(back, hi)
+    stage.move_to(back)
+
+
+def _safe_stop(stage, detector) -> None:
+    for fn in (stage.stop, stage.close, detector.close):
+        try:
+            fn()
+        except Exception:  # noqa: BLE001 - best effort on the way out
+            pass
+
+
+def _print_table(summary: dict) -> None:
+    from rich.console import Console
+    from rich.table import Table
+    t = Table(title="modetick sweep", show_header=False)
+    t.add_column(style="grey62")
+    t.add_column()
+    for k, v in summary.items():
+        if isinstance(v, (dict, list)):
+            continue
+        t.add_row(k, f"{v:.6g}" if isinstance(v, float) else str(v))
+    if "truth" in summary:
+        t.add_row("truth (sim)", ", ".join(f"{k} {v:.6g}" if isinstance(v, float) else f"{k} {v}"
+                                            for k, v in summary["truth"].items() if v is not None))
+    Console(stderr=False).print(t)

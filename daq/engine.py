@@ -1,0 +1,236 @@
+"""The sweep engine: step the stage, read the detector, count, log.
+
+One loop in the calling thread. Per step it only moves, waits, reads and
+appends to Python lists; every FLUSH_S seconds (or FLUSH_SAMPLES samples) the
+buffered chunk goes through the streaming counter and into the log in one
+transaction, and the shared LiveState is updated for the dashboard, which
+renders from its own thread. So neither counting nor drawing slows the step
+rate, and a killed process loses at most one flush interval of samples.
+"""
+from __future__ import annotations
+
+import collections
+import shutil
+import signal
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import numpy as np
+
+from daq import schedule
+from drivers.base import DeviceError
+
+FLUSH_S = 0.25
+FLUSH_SAMPLES = 4096
+RECENT = 240          # readings kept for the dashboard's strip chart
+STALL_READS = 200     # identical readings in a row before the detector is called stuck
+MIN_FREE_BYTES = 50_000_000
+_HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
+
+
+@dataclass
+class LiveState:
+    """What the dashboard shows; written by the engine, read by the renderer."""
+
+    log_path: str = ""
+    total_samples: int = 0
+    passes: int = 1
+    samples: int = 0
+    position_steps: int = 0
+    direction: int = 1
+    pass_index: int = 0
+    t_s: float = 0.0
+    estimate: dict = field(default_factory=dict)
+    calib: Any = None                       # callable(spacing_steps) -> dict or None
+    recent: collections.deque = field(default_factory=lambda: collections.deque(maxlen=RECENT))
+    recent_blips: collections.deque = field(default_factory=lambda: collections.deque(maxlen=64))
+    events: collections.deque = field(default_factory=lambda: collections.deque(maxlen=8))
+    status: str = "running"
+    paused: bool = False
+    aux: dict = field(default_factory=dict)
+
+    samples_done_this_run: int = 0          # samples taken by this process (rate, time left)
+    t_run_s: float = 0.0
+
+    def rate_per_s(self) -> float:
+        return self.samples_done_this_run / self.t_run_s if self.t_run_s > 0 else 0.0
+
+
+class StopRequested(Exception):
+    pass
+
+
+class Engine:
+    """Runs one sweep schedule against opened devices."""
+
+    def __init__(self, rig, stage, detector, counter, log, state: LiveState | None = None,
+                 stop_flag: Callable[[], bool] | None = None, pause_flag: threading.Event | None = None,
+                 t0_s: float = 0.0):
+        self.rig, self.stage, self.detector = rig, stage, detector
+        self.counter, self.log = counter, log
+        self.state = state or LiveState()
+        self.stop_flag = stop_flag or (lambda: False)
+        self.pause_flag = pause_flag
+        self.t0_s = t0_s              # time offset when resuming, so t_s keeps growing
+        self._buf: dict[str, list] = {k: [] for k in ("t", "pos", "dir", "pass", "val", "spr")}
+        self._aux: dict[str, list] = {}
+        self._pending_events: list[tuple] = []
+        self._last_value = None
+        self._same_count = 0
+
+    # -- events -------------------------------------------------------------
+    def note(self, kind: str, detail: str, pos: float | None = None) -> None:
+        """Record a non-blip event (pass, warning, fault, status)."""
+        i = self.log.n_samples + len(self._buf["val"])
+        self._pending_events.append((i, self.state.t_s, kind, pos, None, None, None, None, detail))
+        self.state.events.append((kind, detail))
+
+    # -- the loop -------------------------------------------------------------
+    def run(self, skip_recorded: int = 0) -> str:
+        """Run (the rest of) the schedule. Returns "finished" or "stopped";
+        device faults propagate as DeviceError after the data is flushed."""
+        sweep = self.rig["sweep"]
+        settle_s = sweep["settle_s"]
+        st = self.state
+        st.passes = sweep["passes"]
+        st.total_samples = schedule.recorded_count(sweep)
+        st.samples = self.log.n_samples
+        buf = self._buf
+        b_t, b_pos, b_dir, b_pass, b_val, b_spr = (buf[k] for k in ("t", "pos", "dir", "pass", "val", "spr"))
+        clock = time.monotonic
+        t_start = clock()
+        next_flush = t_start + FLUSH_S
+        last_pass = None
+        move_to, read = self.stage.move_to, self.detector.read
+        recent = st.recent
+        try:
+            for mv in schedule.moves(sweep, skip_recorded):
+                if self.stop_flag():
+                    raise StopRequested
+                if self.pause_flag is not None and self.pause_flag.is_set():
+                    self._pause()
+                if mv.pass_index != last_pass:
+                    if last_pass is not None or skip_recorded:
+                        self.note("pass", f"pass {mv.pass_index + 1} of {sweep['passes']} "
+                                          f"({'up' if mv.direction > 0 else 'down'})", mv.target_steps)
+                    last_pass = mv.pass_index
+                    st.pass_index, st.direction = mv.pass_index, mv.direction
+                move_to(mv.target_steps)
+                st.position_steps = mv.target_steps
+                if not mv.record:
+                    if sweep["dwell_s"]:
+                        time.sleep(sweep["dwell_s"])
+                    continue
+                if settle_s:
+                    time.sleep(settle_s)
+                r = read()
+                now = clock()
+                t = self.t0_s + (now - t_start)
+                b_t.append(t)
+                b_pos.append(mv.target_steps)
+                b_dir.append(mv.direction)
+                b_pass.append(mv.pass_index)
+                b_val.append(r.value)
+                b_spr.append(r.spread)
+                if r.aux:
+                    self._add_aux(r.aux, len(b_val))
+                recent.append(r.value)
+                if r.value == self._last_value:
+                    self._same_count += 1
+                    if self._same_count == STALL_READS:
+                        self.note("warning", f"detector returned {r.value!r} {STALL_READS} times in a row: "
+                                             "stuck, disconnected or saturated?", mv.target_steps)
+                else:
+                    self._same_count, self._last_value = 0, r.value
+                if now >= next_flush or len(b_val) >= FLUSH_SAMPLES:
+                    st.t_s = t
+                    st.t_run_s = now - t_start
+                    self.flush()
+                    next_flush = now + FLUSH_S
+        except StopRequested:
+            self.flush()
+            return "stopped"
+        except BaseException:
+            self.flush()   # keep every sample up to the fault or interrupt
+            raise
+        self.flush()
+        st.t_run_s = clock() - t_start
+        return "finished"
+
+    def _add_aux(self, aux: dict, n_now: int) -> None:
+        for k, v in aux.items():
+            col = self._aux.setdefault(k, [])
+            col.extend([float("nan")] * (n_now - 1 - len(col)))
+            col.append(float(v))
+        self.state.aux = dict(aux)
+
+    def _pause(self) -> None:
+        self.flush()
+        self.state.paused = True
+        self.note("status", "paused")
+        while self.pause_flag.is_set() and not self.stop_flag():
+            time.sleep(0.05)
+        self.state.paused = False
+        self.note("status", "resumed")
+
+    def flush(self) -> None:
+        """Count and log the buffered chunk in one transaction.
+
+        SIGINT/SIGTERM are held back meanwhile, so a second Ctrl-C can never
+        land between writing a block and clearing the buffer (which would log
+        the block twice) or between the samples and the counter state.
+        """
+        in_main = threading.current_thread() is threading.main_thread()
+        if in_main:
+            signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
+        try:
+            self._flush()
+        finally:
+            if in_main:
+                signal.pthread_sigmask(signal.SIG_UNBLOCK, _HELD_SIGNALS)
+
+    def _flush(self) -> None:
+        buf, st = self._buf, self.state
+        n = len(buf["val"])
+        if n:
+            first_i = self.log.n_samples
+            pos = np.asarray(buf["pos"], dtype=np.int64)
+            direction = np.asarray(buf["dir"], dtype=np.int64)
+            value = np.asarray(buf["val"], dtype=np.float64)
+            aux = None
+            if self._aux:
+                aux = {k: (v + [float("nan")] * (n - len(v))) for k, v in self._aux.items()}
+            t_arr = np.asarray(buf["t"], dtype=np.float64)
+            events = self.counter.feed(pos, direction, value)
+            self.log.append_samples(t_arr, pos, direction, np.asarray(buf["pass"]), value,
+                                    np.asarray(buf["spr"], dtype=np.float64), aux, commit=False)
+            rows = []
+            for ev in events:
+                t_ev = float(t_arr[min(max(ev.index - first_i, 0), n - 1)])
+                rows.append((ev.index, t_ev, ev.kind, ev.position_steps, ev.direction,
+                             ev.mode if ev.kind == "blip" else None, ev.height, ev.width_steps, None))
+                if ev.kind == "blip":
+                    st.recent_blips.append(ev.index)
+            self.log.append_events(rows)
+            for k in buf:
+                buf[k].clear()
+            self._aux.clear()
+            st.samples = self.log.n_samples
+            st.samples_done_this_run += n
+            st.estimate = self.counter.estimate()
+        self.log.append_events(self._pending_events)
+        self._pending_events.clear()
+        self.log.set_meta(counter_state=_json_state(self.counter))  # commits the transaction
+        self._check_disk()
+
+    def _check_disk(self) -> None:
+        free = shutil.disk_usage(self.log.path.parent).free
+        if free < MIN_FREE_BYTES:
+            raise DeviceError(f"disk: only {free // 1_000_000} MB free beside {self.log.path}; stopped to keep the log intact")
+
+
+def _json_state(counter) -> str:
+    import json
+    return json.dumps(counter.get_state())

@@ -1,0 +1,68 @@
+"""The end-of-run summary: the live count plus the offline refinement of the log."""
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from daq.runlog import RunLog
+
+# Keys every summary carries, whether or not the rig is calibrated.
+CORE_KEYS = ("modes", "crossings", "spacing_steps", "spacing_steps_u", "samples", "status", "log")
+CALIBRATED_KEYS = ("spacing_nm", "spacing_nm_u", "wavelength_nm", "length_um", "length_um_u")
+
+
+def _clean(x: Any) -> Any:
+    """JSON-safe: NaN/inf become None, numpy scalars become Python numbers."""
+    if isinstance(x, dict):
+        return {k: _clean(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_clean(v) for v in x]
+    if hasattr(x, "item") and not isinstance(x, (str, bytes)):
+        x = x.item()
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    return x
+
+
+def analyze_log(log: RunLog, sections: dict) -> dict:
+    """Offline analysis of every logged sample (analysis.pipeline)."""
+    from analysis.pipeline import analyze_trace
+    s = log.read_samples()
+    if len(s) == 0:
+        return {}
+    return analyze_trace(s.position_steps, s.value, direction=s.direction, pass_index=s.pass_index,
+                         sections=sections, counter_settings=sections.get("counter"))
+
+
+def build_summary(log: RunLog, sections: dict, status: str, counter=None, bench=None,
+                  reason: str = "") -> dict:
+    result = analyze_log(log, sections)
+    out: dict[str, Any] = dict(result)
+    if counter is not None:
+        # The live count is the product; the offline pass refines spacing and length.
+        out["modes"], out["crossings"] = counter.modes, counter.crossings
+        live = counter.estimate()
+        out["live_spacing_steps"] = live.get("spacing_steps")
+    out.setdefault("modes", 0)
+    out.setdefault("crossings", 0)
+    out.setdefault("spacing_steps", None)
+    out.setdefault("spacing_steps_u", None)
+    out["samples"] = log.n_samples
+    out["status"] = status
+    out["log"] = str(log.path)
+    if reason:
+        out["reason"] = reason
+    calibrated = all(x is not None for x in (sections["stage"]["deg_per_step"],
+                                             sections["stage"]["angle_at_zero_deg"],
+                                             sections["grating"]["lines_per_mm"]))
+    if not calibrated:
+        for k in CALIBRATED_KEYS:
+            out.pop(k, None)
+    if bench is not None:
+        t = bench.truth()
+        out["truth"] = {k: t.get(k) for k in ("modes", "spacing_steps", "spacing_nm", "length_um",
+                                              "group_index", "wavelength_nm")}
+    # Readers look for these first.
+    ordered = {k: out[k] for k in CORE_KEYS + CALIBRATED_KEYS if k in out}
+    ordered.update({k: v for k, v in out.items() if k not in ordered})
+    return _clean(ordered)
