@@ -58,6 +58,22 @@ def sparkline(values: list[float], width: int) -> str:
     return "".join(top) + "\n" + "".join(bottom)
 
 
+def strip_chart(recent: list[tuple[int, float]], blips: set[int], width: int) -> tuple[str, str]:
+    """Recent (index, value) readings squeezed into ``width`` columns.
+
+    Each column shows the maximum of its bin of readings, so a narrow blip
+    never falls between columns; a marker row puts ▲ under columns holding a
+    counted blip.
+    """
+    if not recent:
+        return "\n", ""
+    per_col = -(-len(recent) // width)
+    cols = [recent[k:k + per_col] for k in range(0, len(recent), per_col)]
+    peaks = [max(v for _, v in c) for c in cols]
+    marks = "".join("▲" if any(i in blips for i, _ in c) else " " for c in cols)
+    return sparkline(peaks, width), marks
+
+
 def _fmt_u(x, u, digits: int = 2) -> str:
     if x is None:
         return "…"
@@ -114,16 +130,7 @@ def render(st: LiveState, width: int = 80) -> Panel:
     top.add_row(left, right)
 
     inner = max(width - 4, 20)
-    recent = list(st.recent)
-    trace = Text(sparkline([v for _, v in recent], inner), style=TRACE_STYLE)
-    marks = [" "] * min(len(recent), inner)
-    shown = recent[-inner:]
-    if shown:
-        first_i = shown[0][0]
-        for i in st.recent_blips:
-            if 0 <= i - first_i < len(marks):
-                marks[i - first_i] = "▲"
-    marker = Text("".join(marks), style=BLIP_STYLE)
+    trace, marker = strip_chart(list(st.recent), set(st.recent_blips), inner)
 
     ev = Text()
     for kind, detail in list(st.events)[-4:]:
@@ -134,7 +141,8 @@ def render(st: LiveState, width: int = 80) -> Panel:
 
     footer = Text(f"log {st.log_path}   p pause/resume · q stop", style=LABEL_STYLE)
     title = f"modetick sweep · {st.status}"
-    return Panel(Group(top, Text(""), trace, marker, ev, footer), title=title, title_align="left",
+    return Panel(Group(top, Text(""), Text(trace, style=TRACE_STYLE), Text(marker, style=BLIP_STYLE),
+                       ev, footer), title=title, title_align="left",
                  border_style="grey50", width=min(width, 120))
 
 

@@ -24,7 +24,7 @@ from drivers.base import DeviceError
 
 FLUSH_S = 0.25
 FLUSH_SAMPLES = 4096
-RECENT = 240          # readings kept for the dashboard's strip chart
+RECENT = 600          # readings kept for the dashboard's strip chart
 STALL_READS = 200     # identical readings in a row before the detector is called stuck
 MIN_FREE_BYTES = 50_000_000
 _HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
@@ -105,6 +105,7 @@ class Engine:
         last_pass = None
         move_to, read = self.stage.move_to, self.detector.read
         recent = st.recent
+        log = self.log
         try:
             for mv in schedule.moves(sweep, skip_recorded):
                 if self.stop_flag():
@@ -136,7 +137,7 @@ class Engine:
                 b_spr.append(r.spread)
                 if r.aux:
                     self._add_aux(r.aux, len(b_val))
-                recent.append(r.value)
+                recent.append((log.n_samples + len(b_val) - 1, r.value))
                 if r.value == self._last_value:
                     self._same_count += 1
                     if self._same_count == STALL_READS:

@@ -1,0 +1,84 @@
+"""Rig-file loader: valid rigs load with defaults, bad ones fail with one clear line."""
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from daq.rig import RigError, default_rig_path, load_rig, parse_rig
+
+ROOT = Path(__file__).resolve().parent.parent
+
+MINIMAL = """
+[sweep]
+start = 0
+stop = 100
+step = 2
+"""
+
+
+def test_default_rig_loads_and_is_calibrated():
+    rig = load_rig()
+    assert rig.source == str(default_rig_path())
+    assert rig.calibrated()
+    assert rig["stage"]["driver"] == "sim"
+    assert rig["sweep"]["step"] > 0
+
+
+def test_minimal_rig_gets_defaults():
+    rig = parse_rig(MINIMAL)
+    assert rig["sweep"]["passes"] == 1
+    assert rig["sweep"]["settle_s"] == 0.0
+    assert rig["grating"]["order"] == 1
+    assert not rig.calibrated()
+
+
+def test_overrides_apply_and_are_typed():
+    rig = parse_rig(MINIMAL, overrides=["sweep.passes=3", "sweep.settle_s=0.5", "stage.min_steps=-10"])
+    assert rig["sweep"]["passes"] == 3 and rig["sweep"]["settle_s"] == 0.5
+    assert rig.overrides == ["sweep.passes=3", "sweep.settle_s=0.5", "stage.min_steps=-10"]
+
+
+@pytest.mark.parametrize("text, overrides, fragment", [
+    ("[sweep]\nstart = 0\nstop = 100\n", [], "[sweep] step: is required"),
+    (MINIMAL, ["sweep.step=0"], "[sweep] step: must be a positive"),
+    (MINIMAL, ["sweep.step=-3"], "[sweep] step: must be a positive"),
+    (MINIMAL, ["sweep.settle_s=-1"], "[sweep] settle_s: must not be negative"),
+    (MINIMAL, ["sweep.stop=0"], "[sweep] stop: equals start"),
+    (MINIMAL, ["sweep.setle_s=1"], "did you mean 'settle_s'"),
+    (MINIMAL, ["sweep.step=\"two\""], "[sweep] step: must be an integer"),
+    (MINIMAL, ["sweep.step=2.5"], "[sweep] step: must be an integer"),
+    (MINIMAL, ["stage.max_steps=50"], "beyond [stage] max_steps = 50"),
+    (MINIMAL, ["stage.min_steps=10"], "below [stage] min_steps = 10"),
+    (MINIMAL, ["stage.driver=\"warp-drive\""], "unknown driver 'warp-drive'"),
+    (MINIMAL, ["grating.order=0"], "[grating] order"),
+    (MINIMAL, ["chip.group_index=0.5"], "[chip] group_index"),
+    (MINIMAL + "[stgae]\nx = 1\n", [], "did you mean [stage]"),
+    (MINIMAL, ["sweep.mode=\"scan\""], "speed_steps_per_s"),
+    (MINIMAL, ["nodot=3"], "expected SECTION.KEY=VALUE"),
+    ("[sweep\nstart = 0\n", [], "TOML syntax error"),
+])
+def test_bad_rigs_name_the_key(text, overrides, fragment):
+    with pytest.raises(RigError) as exc:
+        parse_rig(text, "bench.toml", overrides)
+    msg = str(exc.value)
+    assert fragment in msg
+    assert msg.startswith("rig file bench.toml: ")
+    assert "\n" not in msg
+
+
+def test_missing_file():
+    with pytest.raises(RigError, match="no such file"):
+        load_rig("/nonexistent/rig.toml")
+
+
+def test_broken_rig_file_exits_2_with_one_line_from_cli(tmp_path):
+    bad = tmp_path / "broken.toml"
+    bad.write_text("[sweep]\nstart = = 3\n")
+    out = subprocess.run([sys.executable, "-m", "daq", "sweep", "--config", str(bad), "--json"],
+                         cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert out.returncode == 2
+    lines = out.stderr.strip().splitlines()
+    assert 1 <= len(lines) <= 3
+    assert "broken.toml" in lines[0] and "Traceback" not in out.stderr
+    assert out.stdout == ""

@@ -1,0 +1,90 @@
+"""Run log round trip through real SQLite, and refusal of files that are not logs."""
+import sqlite3
+
+import numpy as np
+import pytest
+
+from daq.rig import parse_rig
+from daq.runlog import LogError, RunLog
+
+RIG = "[sweep]\nstart = 0\nstop = 100\nstep = 1\n"
+
+
+def test_round_trip_is_exact(tmp_path):
+    rng = np.random.default_rng(3)
+    rig = parse_rig(RIG, "bench.toml")
+    log = RunLog.create(tmp_path / "run.db", rig)
+    blocks = []
+    for k in range(5):
+        n = int(rng.integers(1, 300))
+        b = dict(t_s=np.cumsum(rng.uniform(0.001, 0.01, n)) + k, position_steps=rng.integers(-5000, 5000, n),
+                 direction=rng.choice([-1, 1], n), pass_index=rng.integers(0, 4, n),
+                 value=rng.normal(0, 1, n) * 10 ** rng.uniform(-6, 3), spread=rng.uniform(0, 1, n))
+        blocks.append(b)
+        log.append_samples(b["t_s"], b["position_steps"], b["direction"], b["pass_index"], b["value"], b["spread"])
+    log.append_events([(3, 0.1, "blip", 12.5, 1, 0, 2.0, 4.0, None)], commit=True)
+    log.finish("finished", {"modes": 1})
+    log.close()
+
+    back = RunLog.open(tmp_path / "run.db")
+    s = back.read_samples()
+    for key in ("position_steps", "direction", "pass_index", "value", "spread"):
+        want = np.concatenate([b[key] for b in blocks])
+        assert np.array_equal(getattr(s, key), want), key
+    want_t = np.concatenate([b["t_s"] for b in blocks])
+    assert np.max(np.abs(s.t_s - want_t)) <= 0.5e-6  # stored in microseconds
+    assert back.meta("status") == "finished"
+    assert back.summary() == {"modes": 1}
+    assert back.rig()["sweep"]["stop"] == 100
+    assert back.events("blip")[0]["pos"] == 12.5
+    assert back.n_samples == len(s)
+    # The file is a valid SQLite database (SQLite's own check).
+    con = sqlite3.connect(tmp_path / "run.db")
+    assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+def test_aux_channels_round_trip(tmp_path):
+    log = RunLog.create(tmp_path / "aux.db", parse_rig(RIG))
+    log.append_samples([0.0, 0.1], [0, 1], [1, 1], [0, 0], [1.0, 2.0], aux={"temp_C": [24.0, 24.5]})
+    log.append_samples([0.2], [2], [1], [0], [3.0])
+    s = log.read_samples()
+    assert s.aux["temp_C"][:2].tolist() == [24.0, 24.5] and np.isnan(s.aux["temp_C"][2])
+
+
+def test_refuses_to_overwrite(tmp_path):
+    RunLog.create(tmp_path / "a.db", parse_rig(RIG)).close()
+    with pytest.raises(LogError, match="already exists"):
+        RunLog.create(tmp_path / "a.db", parse_rig(RIG))
+
+
+@pytest.mark.parametrize("content", [b"", b"hello, not a database", b"SQLite format 3\x00" + b"\x00" * 50])
+def test_not_a_log(tmp_path, content):
+    p = tmp_path / "x.db"
+    p.write_bytes(content)
+    with pytest.raises(LogError, match="not a modetick run log"):
+        RunLog.open(p)
+
+
+def test_other_sqlite_file_is_not_a_log(tmp_path):
+    p = tmp_path / "other.db"
+    con = sqlite3.connect(p)
+    con.execute("CREATE TABLE t (x)")
+    con.commit()
+    con.close()
+    with pytest.raises(LogError, match="not a modetick run log"):
+        RunLog.open(p)
+
+
+def test_compact_storage(tmp_path):
+    # Requirement from the performance issue: <= 12 bytes per sample.
+    n = 200_000
+    rng = np.random.default_rng(1)
+    log = RunLog.create(tmp_path / "big.db", parse_rig(RIG))
+    pos = np.arange(n)
+    for a in range(0, n, 4096):
+        sl = slice(a, a + 4096)
+        log.append_samples(pos[sl] * 1e-3, pos[sl], np.ones(4096)[: len(pos[sl])], np.zeros(len(pos[sl])),
+                           np.round(rng.normal(1.0, 0.01, len(pos[sl])), 6))
+    log.close()
+    size = sum(f.stat().st_size for f in tmp_path.glob("big.db*"))
+    assert size / n <= 12
