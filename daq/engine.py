@@ -27,6 +27,7 @@ FLUSH_SAMPLES = 4096
 RECENT = 600          # readings kept for the dashboard's strip chart
 STALL_READS = 200     # identical readings in a row before the detector is called stuck
 MIN_FREE_BYTES = 50_000_000
+POSITION_TOLERANCE_STEPS = 1
 _HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
 
 
@@ -77,6 +78,7 @@ class Engine:
         self._buf: dict[str, list] = {k: [] for k in ("t", "pos", "dir", "pass", "val", "spr")}
         self._aux: dict[str, list] = {}
         self._pending_events: list[tuple] = []
+        self._warned: set[str] = set()
         self._last_value = None
         self._same_count = 0
 
@@ -103,6 +105,7 @@ class Engine:
         t_start = clock()
         next_flush = t_start + FLUSH_S
         last_pass = None
+        prev_target = None
         move_to, read = self.stage.move_to, self.detector.read
         recent = st.recent
         log = self.log
@@ -113,12 +116,15 @@ class Engine:
                 if self.pause_flag is not None and self.pause_flag.is_set():
                     self._pause()
                 if mv.pass_index != last_pass:
+                    if last_pass is not None:
+                        self._check_position(prev_target)
                     if last_pass is not None or skip_recorded:
                         self.note("pass", f"pass {mv.pass_index + 1} of {sweep['passes']} "
                                           f"({'up' if mv.direction > 0 else 'down'})", mv.target_steps)
                     last_pass = mv.pass_index
                     st.pass_index, st.direction = mv.pass_index, mv.direction
                 move_to(mv.target_steps)
+                prev_target = mv.target_steps
                 st.position_steps = mv.target_steps
                 if not mv.record:
                     if sweep["dwell_s"]:
@@ -136,6 +142,9 @@ class Engine:
                 b_val.append(r.value)
                 b_spr.append(r.spread)
                 if r.aux:
+                    if r.aux.get("saturated"):
+                        self._warn_once("saturated", "detector saturated: readings are clipped "
+                                                     "(lower the gain or the exposure)", mv.target_steps)
                     self._add_aux(r.aux, len(b_val))
                 recent.append((log.n_samples + len(b_val) - 1, r.value))
                 if r.value == self._last_value:
@@ -157,8 +166,26 @@ class Engine:
             self.flush()   # keep every sample up to the fault or interrupt
             raise
         self.flush()
+        if last_pass is not None:
+            self._check_position(prev_target)
         st.t_run_s = clock() - t_start
         return "finished"
+
+    def _warn_once(self, key: str, detail: str, pos: float | None = None) -> None:
+        if key not in self._warned:
+            self._warned.add(key)
+            self.note("warning", detail, pos)
+
+    def _check_position(self, target: int) -> None:
+        """Watchdog at each turning point: the stage must report where it was sent.
+
+        Checked once a pass, not per step, so a slow controller query does not
+        set the pace of the sweep.
+        """
+        reported = self.stage.position_steps()
+        if abs(reported - target) > POSITION_TOLERANCE_STEPS:
+            raise DeviceError(f"stage {self.stage.name}: reports {reported} steps after a move to "
+                              f"{target}; it did not reach its target (stalled, or at an end stop?)")
 
     def _add_aux(self, aux: dict, n_now: int) -> None:
         for k, v in aux.items():

@@ -130,7 +130,7 @@ class RunLog:
         path.parent.mkdir(parents=True, exist_ok=True)
         conn = sqlite3.connect(str(path), check_same_thread=False)
         conn.execute("PRAGMA journal_mode=WAL")
-        conn.execute("PRAGMA synchronous=NORMAL")
+        conn.execute("PRAGMA synchronous=FULL")  # fsync each commit: a power cut loses at most one flush
         conn.executescript(_SCHEMA)
         log = cls(path, conn)
         log.set_meta(format=FORMAT, format_version=str(FORMAT_VERSION),
@@ -155,6 +155,7 @@ class RunLog:
             raise LogError(f"log {path}: not a modetick run log (no format marker)")
         if writable:
             conn.execute("PRAGMA journal_mode=WAL")
+            conn.execute("PRAGMA synchronous=FULL")
         return cls(path, conn)
 
     def close(self) -> None:

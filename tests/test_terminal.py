@@ -1,0 +1,48 @@
+"""The dashboard in a real terminal: tmux runs `modetick sweep` in an 80x24 pane."""
+import shutil
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+
+pytestmark = pytest.mark.skipif(shutil.which("tmux") is None, reason="tmux is not installed")
+
+
+def _tmux(*args, **kw):
+    return subprocess.run(["tmux", *args], capture_output=True, text=True, timeout=20, **kw)
+
+
+def test_dashboard_in_tmux_then_quit_key(tmp_path):
+    session = f"modetick-test-{int(time.time() * 1000) % 10**8}"
+    log = tmp_path / "live.db"
+    cmd = (f"cd {ROOT} && {sys.executable} -m daq sweep --log {log} "
+           f"--set sweep.settle_s=0.004; echo EXIT=$?; sleep 30")
+    _tmux("new-session", "-d", "-s", session, "-x", "80", "-y", "24", cmd)
+    try:
+        screen = ""
+        deadline = time.time() + 30
+        while time.time() < deadline:
+            time.sleep(0.5)
+            screen = _tmux("capture-pane", "-p", "-t", session).stdout
+            if "modes counted" in screen and "samples" in screen and "/s" in screen:
+                break
+        assert "modes counted" in screen, screen
+        assert "modetick sweep · running" in screen
+        lines = screen.splitlines()
+        assert len(lines) <= 24 and all(len(l) <= 80 for l in lines)
+        # The q key stops the run cleanly after the current step: exit 130, log kept.
+        _tmux("send-keys", "-t", session, "q")
+        deadline = time.time() + 20
+        while time.time() < deadline and "EXIT=" not in screen:
+            time.sleep(0.3)
+            screen = _tmux("capture-pane", "-p", "-t", session, "-S", "-60").stdout
+        assert "EXIT=130" in screen, screen
+    finally:
+        _tmux("kill-session", "-t", session)
+    from daq.runlog import RunLog
+    lg = RunLog.open(log)
+    assert lg.meta("status") == "stopped" and lg.n_samples > 0
