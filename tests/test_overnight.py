@@ -1,0 +1,98 @@
+"""Unattended runs: kill -9 and resume, SIGINT/SIGTERM stops, a finished run refuses resume."""
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+PACE = "sweep.settle_s=0.0015"   # the default rig paced by its own settle time
+
+
+def _sweep(*args, **kw):
+    return subprocess.Popen([sys.executable, "-m", "daq", "sweep", *args], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
+
+
+def _samples_in(log: Path) -> int:
+    if not log.exists():
+        return 0
+    try:
+        con = sqlite3.connect(f"file:{log}?mode=ro", uri=True, timeout=5)
+        n = con.execute("SELECT COALESCE(SUM(n), 0) FROM sample_blocks").fetchone()[0]
+        con.close()
+        return int(n)
+    except sqlite3.DatabaseError:
+        return 0
+
+
+def _wait_for_samples(log: Path, n: int, proc, timeout_s: float = 60) -> None:
+    deadline = time.time() + timeout_s
+    while _samples_in(log) < n:
+        assert proc.poll() is None, proc.communicate()
+        assert time.time() < deadline, "sweep did not log samples in time"
+        time.sleep(0.1)
+
+
+def test_kill_9_then_resume_matches_an_uninterrupted_run(tmp_path):
+    full = subprocess.run([sys.executable, "-m", "daq", "sweep", "--log", str(tmp_path / "full.db"),
+                           "--json", "--set", "sweep.settle_s=0"], cwd=ROOT,
+                          capture_output=True, text=True, timeout=120)
+    assert full.returncode == 0, full.stderr
+    want = json.loads(full.stdout)
+
+    log = tmp_path / "killed.db"
+    proc = _sweep("--log", str(log), "--json", "--set", PACE)
+    _wait_for_samples(log, 2500, proc)
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=10)
+    con = sqlite3.connect(log)
+    assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"   # SQLite's own check
+    assert con.execute("SELECT value FROM meta WHERE key='status'").fetchone()[0] == "running"
+    con.close()
+    kept = _samples_in(log)
+    assert 2500 <= kept < want["samples"]
+
+    res = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(log), "--json"],
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0, res.stderr
+    got = json.loads(res.stdout)
+    assert got["status"] == "finished"
+    assert got["samples"] == want["samples"]
+    assert abs(got["modes"] - want["modes"]) <= 1
+    assert abs(got["modes"] - got["truth"]["modes"]) <= 1
+    con = sqlite3.connect(log)
+    assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    # Resuming a finished run is refused and changes nothing.
+    again = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(log)],
+                           cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert again.returncode == 2 and "already complete" in again.stderr
+
+
+def _stop_with(sig, tmp_path):
+    log = tmp_path / f"stop{int(sig)}.db"
+    proc = _sweep("--log", str(log), "--json", "--set", PACE)
+    _wait_for_samples(log, 1500, proc)
+    proc.send_signal(sig)
+    out, err = proc.communicate(timeout=30)
+    return proc.returncode, out, err, log
+
+
+def test_sigint_exits_130_and_leaves_a_log_analyze_reads(tmp_path):
+    code, out, err, log = _stop_with(signal.SIGINT, tmp_path)
+    assert code == 130, err
+    summary = json.loads(out)
+    assert summary["status"] == "stopped" and summary["samples"] >= 1500
+    ana = subprocess.run([sys.executable, "-m", "daq", "analyze", str(log), "--json"], cwd=ROOT,
+                         capture_output=True, text=True, timeout=60)
+    assert ana.returncode == 0, ana.stderr
+    assert json.loads(ana.stdout)["samples"] == summary["samples"]
+
+
+def test_sigterm_exits_143(tmp_path):
+    code, out, err, log = _stop_with(signal.SIGTERM, tmp_path)
+    assert code == 143, err
+    assert json.loads(out)["status"] == "stopped"
