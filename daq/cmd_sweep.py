@@ -121,9 +121,15 @@ def run(args) -> int:
         engine = Engine(rig, stage, detector, counter, log, state,
                         stop_flag=lambda: stopper.signum is not None, pause_flag=pause, t0_s=t0)
         if skip:
-            if skip >= schedule.recorded_count(rig["sweep"]):
+            if log.meta("status") == "finished":
                 return fail(f"log {log.path}: the run is already complete", 2)
-            _reapproach(stage, rig, skip)
+            if rig["sweep"]["mode"] == "scan":
+                engine._resume_pass = int(s_last.pass_index[-1])
+                engine._resume_pos = int(s_last.position_steps[-1])
+            else:
+                if skip >= schedule.recorded_count(rig["sweep"]):
+                    return fail(f"log {log.path}: the run is already complete", 2)
+                _reapproach(stage, rig, skip)
             engine.note("status", f"resumed after {skip} samples")
         log.set_meta(status="running")
         tty = sys.stdout.isatty() and not args.json and not args.plain

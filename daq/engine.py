@@ -25,9 +25,10 @@ from drivers.base import DeviceError
 FLUSH_S = 0.25
 FLUSH_SAMPLES = 4096
 RECENT = 600          # readings kept for the dashboard's strip chart
-STALL_READS = 200     # identical readings in a row before the detector is called stuck
+STALL_READS = 500     # identical readings in a row before the detector is called stuck
 MIN_FREE_BYTES = 50_000_000
 POSITION_TOLERANCE_STEPS = 1
+SCAN_POLL_S = 0.05   # how often a scanning stage is asked where it is
 _HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
 
 
@@ -79,6 +80,8 @@ class Engine:
         self._aux: dict[str, list] = {}
         self._pending_events: list[tuple] = []
         self._warned: set[str] = set()
+        # Scan mode, resuming: the pass and position of the last logged sample.
+        self._resume_pass, self._resume_pos = 0, None
         self._last_value = None
         self._same_count = 0
 
@@ -94,71 +97,17 @@ class Engine:
         """Run (the rest of) the schedule. Returns "finished" or "stopped";
         device faults propagate as DeviceError after the data is flushed."""
         sweep = self.rig["sweep"]
-        settle_s = sweep["settle_s"]
         st = self.state
         st.passes = sweep["passes"]
         st.total_samples = schedule.recorded_count(sweep)
         st.samples = self.log.n_samples
-        buf = self._buf
-        b_t, b_pos, b_dir, b_pass, b_val, b_spr = (buf[k] for k in ("t", "pos", "dir", "pass", "val", "spr"))
-        clock = time.monotonic
-        t_start = clock()
-        next_flush = t_start + FLUSH_S
-        last_pass = None
-        prev_target = None
-        move_to, read = self.stage.move_to, self.detector.read
-        recent = st.recent
-        log = self.log
+        self._t_start = time.monotonic()
+        self._next_flush = self._t_start + FLUSH_S
         try:
-            for mv in schedule.moves(sweep, skip_recorded):
-                if self.stop_flag():
-                    raise StopRequested
-                if self.pause_flag is not None and self.pause_flag.is_set():
-                    self._pause()
-                if mv.pass_index != last_pass:
-                    if last_pass is not None:
-                        self._check_position(prev_target)
-                    if last_pass is not None or skip_recorded:
-                        self.note("pass", f"pass {mv.pass_index + 1} of {sweep['passes']} "
-                                          f"({'up' if mv.direction > 0 else 'down'})", mv.target_steps)
-                    last_pass = mv.pass_index
-                    st.pass_index, st.direction = mv.pass_index, mv.direction
-                move_to(mv.target_steps)
-                prev_target = mv.target_steps
-                st.position_steps = mv.target_steps
-                if not mv.record:
-                    if sweep["dwell_s"]:
-                        time.sleep(sweep["dwell_s"])
-                    continue
-                if settle_s:
-                    time.sleep(settle_s)
-                r = read()
-                now = clock()
-                t = self.t0_s + (now - t_start)
-                b_t.append(t)
-                b_pos.append(mv.target_steps)
-                b_dir.append(mv.direction)
-                b_pass.append(mv.pass_index)
-                b_val.append(r.value)
-                b_spr.append(r.spread)
-                if r.aux:
-                    if r.aux.get("saturated"):
-                        self._warn_once("saturated", "detector saturated: readings are clipped "
-                                                     "(lower the gain or the exposure)", mv.target_steps)
-                    self._add_aux(r.aux, len(b_val))
-                recent.append((log.n_samples + len(b_val) - 1, r.value))
-                if r.value == self._last_value:
-                    self._same_count += 1
-                    if self._same_count == STALL_READS:
-                        self.note("warning", f"detector returned {r.value!r} {STALL_READS} times in a row: "
-                                             "stuck, disconnected or saturated?", mv.target_steps)
-                else:
-                    self._same_count, self._last_value = 0, r.value
-                if now >= next_flush or len(b_val) >= FLUSH_SAMPLES:
-                    st.t_s = t
-                    st.t_run_s = now - t_start
-                    self.flush()
-                    next_flush = now + FLUSH_S
+            if sweep["mode"] == "scan":
+                self._run_scan(skip_recorded)
+            else:
+                self._run_steps(skip_recorded)
         except StopRequested:
             self.flush()
             return "stopped"
@@ -166,10 +115,132 @@ class Engine:
             self.flush()   # keep every sample up to the fault or interrupt
             raise
         self.flush()
-        if last_pass is not None:
-            self._check_position(prev_target)
-        st.t_run_s = clock() - t_start
+        st.t_run_s = time.monotonic() - self._t_start
         return "finished"
+
+    def _between_steps(self) -> None:
+        if self.stop_flag():
+            raise StopRequested
+        if self.pause_flag is not None and self.pause_flag.is_set():
+            self._pause()
+
+    def _new_pass(self, pass_index: int, direction: int, target: int, announce: bool) -> None:
+        if announce:
+            self.note("pass", f"pass {pass_index + 1} of {self.rig['sweep']['passes']} "
+                              f"({'up' if direction > 0 else 'down'})", target)
+        self.state.pass_index, self.state.direction = pass_index, direction
+
+    def _run_steps(self, skip_recorded: int) -> None:
+        sweep = self.rig["sweep"]
+        settle_s, dwell_s = sweep["settle_s"], sweep["dwell_s"]
+        st = self.state
+        last_pass = prev_target = None
+        move_to, read, take = self.stage.move_to, self.detector.read, self._take
+        for mv in schedule.moves(sweep, skip_recorded):
+            self._between_steps()
+            if mv.pass_index != last_pass:
+                if last_pass is not None:
+                    self._check_position(prev_target)
+                self._new_pass(mv.pass_index, mv.direction, mv.target_steps,
+                               last_pass is not None or skip_recorded > 0)
+                last_pass = mv.pass_index
+            move_to(mv.target_steps)
+            prev_target = mv.target_steps
+            st.position_steps = mv.target_steps
+            if not mv.record:
+                if dwell_s:
+                    time.sleep(dwell_s)
+                continue
+            if settle_s:
+                time.sleep(settle_s)
+            take(mv.target_steps, mv.direction, mv.pass_index, read())
+        if prev_target is not None:
+            self._check_position(prev_target)
+
+    def _run_scan(self, skip_recorded: int) -> None:
+        """Continuous scan: the stage moves at constant speed while the detector
+        is read as fast as it answers. Each reading's position comes from the
+        stage's last position report, carried forward by speed x elapsed time
+        (reports are polled every SCAN_POLL_S, not per reading, so a slow
+        controller does not slow the reads)."""
+        stage = self.stage
+        if not hasattr(stage, "start_scan"):
+            raise DeviceError(f"stage {stage.name}: this driver cannot scan at constant speed; "
+                              "use [sweep] mode = \"step\"")
+        sweep = self.rig["sweep"]
+        speed = sweep["speed_steps_per_s"]
+        pts = schedule.pass_points(sweep)
+        first, last = pts[0], pts[-1]
+        d0 = 1 if last > first else -1
+        take_up = max(sweep["overshoot_steps"], sweep["step"])
+        start_pass = 0
+        if skip_recorded:
+            # Resume at the pass the last sample belongs to, from its start.
+            start_pass = self._resume_pass
+        read, clock = self.detector.read, time.monotonic
+        for p in range(start_pass, sweep["passes"]):
+            d = d0 if p % 2 == 0 else -d0
+            begin, end = (first, last) if d == d0 else (last, first)
+            if skip_recorded and p == start_pass and self._resume_pos is not None:
+                begin = self._resume_pos
+            self._between_steps()
+            self._new_pass(p, d, begin, p > 0)
+            stage.move_to(self._clamp(begin - d * take_up))   # take up backlash
+            stage.move_to(begin)
+            stage.start_scan(end, speed)
+            t_q, p_q, moving = clock(), stage.position_steps(), True
+            while True:
+                self._between_steps()
+                r = read()
+                now = clock()
+                if now - t_q >= SCAN_POLL_S or not moving:
+                    p_q, t_q, moving = stage.position_steps(), now, stage.is_moving()
+                pos = p_q + d * speed * (now - t_q) if moving else p_q
+                pos = min(max(pos, min(begin, end)), max(begin, end))
+                self.state.position_steps = int(round(pos))
+                self._take(int(round(pos)), d, p, r)
+                if not moving:
+                    break
+            self._check_position(end)
+
+    def _clamp(self, target: int) -> int:
+        lo, hi = self.rig["stage"]["min_steps"], self.rig["stage"]["max_steps"]
+        if lo is not None:
+            target = max(target, lo)
+        if hi is not None:
+            target = min(target, hi)
+        return target
+
+    def _take(self, pos: int, direction: int, pass_index: int, r) -> None:
+        """Buffer one reading; flush when the interval or the chunk is full."""
+        buf = self._buf
+        now = time.monotonic()
+        t = self.t0_s + (now - self._t_start)
+        buf["t"].append(t)
+        buf["pos"].append(pos)
+        buf["dir"].append(direction)
+        buf["pass"].append(pass_index)
+        vals = buf["val"]
+        vals.append(r.value)
+        buf["spr"].append(r.spread)
+        if r.aux:
+            if r.aux.get("saturated"):
+                self._warn_once("saturated", "detector saturated: readings are clipped "
+                                             "(lower the gain or the exposure)", pos)
+            self._add_aux(r.aux, len(vals))
+        self.state.recent.append((self.log.n_samples + len(vals) - 1, r.value))
+        if r.value == self._last_value:
+            self._same_count += 1
+            if self._same_count == STALL_READS:
+                self.note("warning", f"detector returned {r.value!r} {STALL_READS} times in a row: "
+                                     "stuck, disconnected or saturated?", pos)
+        else:
+            self._same_count, self._last_value = 0, r.value
+        if now >= self._next_flush or len(vals) >= FLUSH_SAMPLES:
+            self.state.t_s = t
+            self.state.t_run_s = now - self._t_start
+            self.flush()
+            self._next_flush = now + FLUSH_S
 
     def _warn_once(self, key: str, detail: str, pos: float | None = None) -> None:
         if key not in self._warned:
