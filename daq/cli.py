@@ -18,6 +18,9 @@ COMMANDS = [
     "simulate",
     "ports",
     "check",
+    "replay",
+    "modes",
+    "park",
 ]
 
 SAFETY = ("Laser safety: grating-tuned diode lasers are often Class 3B or 4 and often infrared "

@@ -1,0 +1,295 @@
+"""Replay a run log through the streaming counter, chunk by chunk as the live run fed it.
+
+The engine writes one sample block per flush, so the log's blocks are the
+live run's chunks: replaying block by block (blocks longer than a live flush
+are split) gives the counter exactly the calls it got live, and with the same
+settings the same count. Blocks are read one at a time and only the columns
+needed are decoded, so memory stays bounded for any log and ``--fast`` is
+limited by zlib and the counter, not by Python.
+"""
+from __future__ import annotations
+
+import json
+import threading
+import time
+import zlib
+from dataclasses import dataclass
+from typing import Callable, Iterator
+
+import numpy as np
+
+from daq.engine import FLUSH_SAMPLES, LiveState
+from daq.runlog import LogError, RunLog, _unpack_delta, _unpack_float, _unpack_small
+
+STATE_EVERY_S = 0.1          # how often the dashboard's LiveState is refreshed
+COMMIT_EVERY_S = 1.0         # how often a new log is committed (as the engine: at least once a second)
+LISTED = 50                  # differences listed in full; the rest are counted
+
+
+@dataclass
+class Chunk:
+    first_i: int
+    position_steps: np.ndarray
+    direction: np.ndarray
+    pass_index: np.ndarray
+    value: np.ndarray
+    t_s: np.ndarray | None = None
+    spread: np.ndarray | None = None
+    aux: dict | None = None
+
+    def __len__(self) -> int:
+        return int(self.value.size)
+
+
+def iter_chunks(log: RunLog, with_time: bool = False, with_all: bool = False,
+                max_samples: int = FLUSH_SAMPLES) -> Iterator[Chunk]:
+    """The log's samples as live-sized chunks, decoding only the columns asked for.
+
+    Reads the sample_blocks table of ``daq.runlog`` directly (with its codecs):
+    ``RunLog.iter_blocks`` decodes every column, which halves the replay rate.
+    """
+    cols = "first_i, n, pos, dir, pass, value"
+    if with_time or with_all:
+        cols += ", t_us"
+    if with_all:
+        cols += ", spread, aux_json"
+    cur = log.conn.execute(f"SELECT {cols} FROM sample_blocks ORDER BY block")
+    for row in cur:
+        first_i, n = row[0], row[1]
+        try:
+            c = Chunk(first_i, _unpack_delta(row[2]), _unpack_small(row[3], "<i1"),
+                      _unpack_small(row[4], "<i2"), _unpack_float(row[5], n))
+            if with_time or with_all:
+                c.t_s = _unpack_delta(row[6]) / 1e6
+            if with_all:
+                c.spread = _unpack_float(row[7], n)
+                c.aux = {k: np.asarray(v, dtype=np.float64) for k, v in json.loads(row[8]).items()} if row[8] else None
+        except (zlib.error, ValueError) as exc:
+            raise LogError(f"log {log.path}: damaged sample block ({exc})") from None
+        if n <= max_samples:
+            yield c
+            continue
+        for k in range(0, n, max_samples):
+            sl = slice(k, k + max_samples)
+            yield Chunk(first_i + k, c.position_steps[sl], c.direction[sl], c.pass_index[sl], c.value[sl],
+                        None if c.t_s is None else c.t_s[sl], None if c.spread is None else c.spread[sl],
+                        None if c.aux is None else {a: v[sl] for a, v in c.aux.items()})
+
+
+def first_time_s(log: RunLog) -> float:
+    row = log.conn.execute("SELECT t_us FROM sample_blocks ORDER BY block LIMIT 1").fetchone()
+    return float(_unpack_delta(row[0])[0]) / 1e6 if row else 0.0
+
+
+class Blips:
+    """Blip events as columns (a night can hold a quarter of a million of them)."""
+
+    def __init__(self):
+        self.i: list[int] = []
+        self.pos: list[float] = []
+        self.dir: list[int] = []
+        self.mode: list[int] = []
+
+    def add(self, i, pos, direction, mode) -> None:
+        self.i.append(int(i))
+        self.pos.append(float(pos) if pos is not None else float("nan"))
+        self.dir.append(int(direction) if direction is not None else 0)
+        self.mode.append(int(mode) if mode is not None else -1)
+
+    def __len__(self) -> int:
+        return len(self.i)
+
+    @classmethod
+    def from_log(cls, log: RunLog) -> "Blips":
+        b = cls()
+        for i, pos, d, mode in log.conn.execute(
+                "SELECT i, pos, dir, mode FROM events WHERE kind='blip' ORDER BY i, id"):
+            b.add(i, pos, d, mode)
+        return b
+
+
+class Replay:
+    """Feeds a log's samples to a counter at a pace (None = as fast as possible)."""
+
+    def __init__(self, log: RunLog, rig, counter, state: LiveState | None = None,
+                 speed: float | None = 1.0, out_log: RunLog | None = None,
+                 stop_flag: Callable[[], bool] | None = None, pause_flag: threading.Event | None = None):
+        self.log, self.rig, self.counter = log, rig, counter
+        self.state = state or LiveState()
+        self.speed = speed
+        self.out_log = out_log
+        self.stop_flag = stop_flag or (lambda: False)
+        self.pause_flag = pause_flag
+        self.blips = Blips()
+        self.samples_done = 0
+        self.wall_s = 0.0
+        self._shown_blips = 0
+
+    def _wait_until(self, t_wall: float) -> bool:
+        """Sleep until the monotonic time t_wall (False if a stop came first)."""
+        while True:
+            if self.stop_flag():
+                return False
+            left = t_wall - time.monotonic()
+            if left <= 0:
+                return True
+            time.sleep(min(left, 0.05))
+
+    def _hold_while_paused(self) -> float:
+        """Wait out a pause; returns the seconds spent, to shift the pacing clock."""
+        if self.pause_flag is None or not self.pause_flag.is_set():
+            return 0.0
+        t0 = time.monotonic()
+        self.state.paused = True
+        while self.pause_flag.is_set() and not self.stop_flag():
+            time.sleep(0.05)
+        self.state.paused = False
+        return time.monotonic() - t0
+
+    def run(self) -> str:
+        """Replay every sample; "finished", or "stopped" when stop_flag turned true."""
+        st, counter, out = self.state, self.counter, self.out_log
+        sweep = self.rig["sweep"]
+        st.passes = sweep["passes"]
+        st.total_samples = self.log.n_samples
+        paced = self.speed is not None
+        t_first = first_time_s(self.log) if paced else 0.0
+        feed, add_blip = counter.feed, self.blips.add
+        clock = time.monotonic
+        t_start = clock()
+        next_state = next_commit = t_start
+        status = "finished"
+        last = None
+        for c in iter_chunks(self.log, with_time=paced, with_all=out is not None):
+            if self.stop_flag():
+                status = "stopped"
+                break
+            if self.pause_flag is not None:
+                t_start += self._hold_while_paused()
+            if paced and not self._wait_until(t_start + (float(c.t_s[-1]) - t_first) / self.speed):
+                status = "stopped"
+                break
+            events = feed(c.position_steps, c.direction, c.value)
+            for ev in events:
+                if ev.kind == "blip":
+                    add_blip(ev.index, ev.position_steps, ev.direction, ev.mode)
+            self.samples_done += len(c)
+            last = c
+            if out is not None:
+                self._write(c, events)
+                now = clock()
+                if now >= next_commit:
+                    out.set_meta(counter_state=json.dumps(counter.get_state()))  # commits
+                    next_commit = now + COMMIT_EVERY_S
+            now = clock()
+            if now >= next_state:
+                self._show(c, events, now - t_start)
+                next_state = now + STATE_EVERY_S
+        self.wall_s = clock() - t_start
+        if last is not None:
+            self._show(last, [], self.wall_s)
+        if out is not None:
+            out.set_meta(counter_state=json.dumps(counter.get_state()))
+        return status
+
+    def _write(self, c: Chunk, events) -> None:
+        out = self.out_log
+        n = len(c)
+        out.append_samples(c.t_s, c.position_steps, c.direction, c.pass_index, c.value, c.spread,
+                           c.aux, commit=False)
+        rows = [(ev.index, float(c.t_s[min(max(ev.index - c.first_i, 0), n - 1)]), ev.kind,
+                 ev.position_steps, ev.direction, ev.mode if ev.kind == "blip" else None,
+                 ev.height, ev.width_steps, None) for ev in events]
+        out.append_events(rows)
+
+    def _show(self, c: Chunk, events, t_run_s: float) -> None:
+        """Refresh the dashboard's LiveState (throttled: drawing is a few Hz anyway)."""
+        st = self.state
+        n = len(c)
+        end = c.first_i + n
+        st.samples = end
+        st.samples_done_this_run = self.samples_done
+        st.t_run_s = t_run_s
+        st.position_steps = int(c.position_steps[-1])
+        st.direction = int(c.direction[-1])
+        st.pass_index = int(c.pass_index[-1])
+        if c.t_s is not None:
+            st.t_s = float(c.t_s[-1])
+        k = min(n, st.recent.maxlen or n)
+        st.recent.extend(zip(range(end - k, end), c.value[n - k:].tolist()))
+        new = self.blips.i[max(self._shown_blips, len(self.blips) - 64):]
+        st.recent_blips.extend(new)
+        self._shown_blips = len(self.blips)
+        st.estimate = self.counter.estimate()
+
+
+# --- comparing two counts ---------------------------------------------------------
+
+def _match(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np.ndarray]:
+    """Pair sorted sample indices a and b that lie within tol; boolean 'matched' masks."""
+    ma, mb = np.zeros(a.size, bool), np.zeros(b.size, bool)
+    i = j = 0
+    while i < a.size and j < b.size:
+        if abs(a[i] - b[j]) <= tol:
+            ma[i] = mb[j] = True
+            i += 1
+            j += 1
+        elif a[i] < b[j]:
+            i += 1
+        else:
+            j += 1
+    return ma, mb
+
+
+def _listed(blips: Blips, idx: np.ndarray) -> list[dict]:
+    return [{"i": blips.i[k], "position_steps": round(blips.pos[k], 2), "direction": blips.dir[k],
+             "mode": blips.mode[k]} for k in idx[:LISTED]]
+
+
+def _modes_listed(blips: Blips, modes: list[int]) -> list[dict]:
+    pos = np.asarray(blips.pos)
+    m = np.asarray(blips.mode)
+    out = []
+    for mode in modes[:LISTED]:
+        at = pos[m == mode]
+        out.append({"mode": int(mode), "positions_steps": [round(float(p), 2) for p in at[:8]]})
+    return out
+
+
+def compare_blips(logged: Blips, replayed: Blips) -> dict:
+    """What the replay counted differently from the logged run: blips and modes, and where.
+
+    Blips are paired by sample index (the same samples, so the same blip lands
+    on nearly the same sample whatever the settings) within 40 % of the usual
+    gap between blips.
+    """
+    a, b = np.asarray(logged.i, dtype=np.int64), np.asarray(replayed.i, dtype=np.int64)
+    gaps = np.diff(a if a.size > 1 else b)
+    gaps = gaps[gaps > 0]
+    tol = max(2.0, 0.4 * float(np.median(gaps))) if gaps.size else 2.0
+    ma, mb = _match(a, b, tol)
+    lost, gained = np.flatnonzero(~ma), np.flatnonzero(~mb)
+    la, lb = np.asarray(logged.mode), np.asarray(replayed.mode)
+    modes_lost = sorted(set(la.tolist()) - set(la[ma].tolist()) - {-1})
+    modes_gained = sorted(set(lb.tolist()) - set(lb[mb].tolist()) - {-1})
+    return {
+        "blips_lost": int(lost.size), "blips_gained": int(gained.size),
+        "lost": _listed(logged, lost), "gained": _listed(replayed, gained),
+        "modes_lost": _modes_listed(logged, modes_lost), "modes_gained": _modes_listed(replayed, modes_gained),
+        "match_tolerance_samples": tol,
+    }
+
+
+def changes(logged_summary: dict | None, logged: Blips, result: dict, replayed: Blips) -> dict:
+    """The replay's result against the logged run's: headline numbers, then blips and modes."""
+    ref = dict(logged_summary or {})
+    if not ref and len(logged):
+        ref = {"modes": len(set(logged.mode) - {-1}), "crossings": len(logged)}
+    out: dict = {"logged": {k: ref.get(k) for k in ("modes", "crossings", "spacing_steps", "length_um")
+                            if k in ref}}
+    out.update(compare_blips(logged, replayed))
+    if not len(logged):
+        out["note"] = "the logged run holds no counted blips to compare with"
+    same_numbers = all(result.get(k) == ref.get(k) for k in ("modes", "crossings"))
+    out["identical"] = bool(len(logged)) and same_numbers and out["blips_lost"] == 0 and out["blips_gained"] == 0
+    return out
