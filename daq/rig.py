@@ -19,6 +19,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from drivers.aux_channels import AUX_SCHEMA
+
 REQUIRED = ...
 
 CORE_SCHEMA: dict[str, dict[str, Any]] = {
@@ -61,6 +63,8 @@ CORE_SCHEMA: dict[str, dict[str, Any]] = {
     },
     "counter": {},
     "sim": {},
+    # Auxiliary readbacks (temperature, drive current) logged with each sample.
+    "aux": AUX_SCHEMA,
 }
 
 

@@ -1,0 +1,58 @@
+"""Motor motion shared by the controller emulators: constant speed, limit switches.
+
+The position walks linearly to the target; each whole step reached is passed
+to the physics (``physics.move_to(steps)``), so the simulated bench sees the
+same sequence of positions a real actuator would go through.
+"""
+from __future__ import annotations
+
+
+class Motion:
+    def __init__(self, physics, start_steps: int = 0, min_steps: int = -1_000_000,
+                 max_steps: int = 1_000_000):
+        self.physics = physics
+        self.min_steps, self.max_steps = min_steps, max_steps
+        self.position = float(start_steps)      # motor position in steps (commanded frame)
+        self.target = start_steps
+        self._from, self._t0, self._dur = self.position, 0.0, 0.0
+        self._physics_at = start_steps
+        self.moves = self.stops = self.stalls = 0
+        physics.move_to(start_steps)
+
+    def steps(self) -> int:
+        return round(self.position)
+
+    def busy(self) -> bool:
+        return self.steps() != self.target
+
+    def tick(self, now: float) -> None:
+        if not self.busy():
+            return
+        frac = 1.0 if self._dur <= 0 else min(1.0, (now - self._t0) / self._dur)
+        self.position = self._from + (self.target - self._from) * frac
+        if frac >= 1.0:
+            self.position = float(self.target)
+        step = self.steps()
+        if step != self._physics_at:
+            try:
+                self.physics.move_to(step)
+            except Exception:   # the physics refuses (end stop, limit): the motor stalls there
+                self.position = float(self._physics_at)
+                self.target = self._physics_at
+                self.stalls += 1
+                return
+            self._physics_at = step
+
+    def start(self, target_steps: int, speed_steps_per_s: float, now: float) -> None:
+        """Begin a move; a target past a limit switch stops at the switch."""
+        self.tick(now)
+        self._from, self._t0 = self.position, now
+        self.target = max(self.min_steps, min(self.max_steps, int(target_steps)))
+        self._dur = abs(self.target - self.position) / speed_steps_per_s
+        self.moves += 1
+        self.tick(now)
+
+    def stop(self) -> None:
+        self.target = self.steps()
+        self.position = float(self.target)
+        self.stops += 1
