@@ -21,6 +21,8 @@ COMMANDS = [
     "replay",
     "modes",
     "park",
+    "report",
+    "export",
 ]
 
 SAFETY = ("Laser safety: grating-tuned diode lasers are often Class 3B or 4 and often infrared "
