@@ -110,7 +110,7 @@ SCENARIOS: dict[str, dict[str, Any]] = {
     "kicks": {
         "description": "stick-slip: the mount slips back 10-25 steps now and then, some blips seen twice",
         "countable": True,
-        "params": {"kicks_per_kstep": 1.5, "kick_slip_steps": 18.0, "kick_recover_steps": 30.0,
+        "params": {"kicks_per_kstep": 3.0, "kick_slip_steps": 18.0, "kick_recover_steps": 30.0,
                    "backlash_steps": 6.0, "white_noise_v": 0.01},
     },
     "split": {
