@@ -34,7 +34,7 @@ from sims import optics
 from sims.camera import CameraModel
 from sims.dispersion import single_oscillator
 from sims.mechanics import KickSites, Lever
-from sims.scenarios import _range_checks, resolve_params
+from sims.scenarios import check_params, resolve_params
 from sims.signal_chain import STREAM_KICKS, STREAM_PHASES, Adc, stream
 
 FOUR_LN2 = 4.0 * math.log(2.0)
@@ -45,7 +45,7 @@ class SimModel:
 
     def __init__(self, sections: dict[str, dict[str, Any]]):
         p = resolve_params(sections.get("sim", {}))
-        errors = _range_checks(p)
+        errors = check_params(p)
         if errors:
             key, msg = errors[0]
             raise ValueError(f"[sim] {key}: {msg}")
