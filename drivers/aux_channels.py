@@ -19,6 +19,7 @@ from typing import Any
 
 from drivers.base import DeviceError, Reading
 from drivers.messages import raise_first
+from drivers.replies import template_fields
 from drivers.retry import RETRY_KEYS
 from drivers.visa_link import VISA_KEYS
 
@@ -69,8 +70,8 @@ def check_aux_settings(cfg: dict) -> list[tuple[str, str]]:
                 or not set(sp) <= {"command", "value", "min", "max", "readback"}:
             out.append((where, "must be a table { command = \"... {value}\", value, min, max, readback (optional) }"))
             continue
-        if not isinstance(sp["command"], str) or "{value}" not in sp["command"]:
-            out.append((where, "command must contain {value}"))
+        if not isinstance(sp["command"], str) or template_fields(sp["command"]) != {"value"}:
+            out.append((where, "command must contain {value} (a format such as {value:.3f} is allowed)"))
         if not all(_number(sp[k]) for k in ("value", "min", "max")):
             out.append((where, "value, min and max must be numbers"))
         elif not sp["min"] <= sp["value"] <= sp["max"]:

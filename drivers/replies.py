@@ -21,3 +21,13 @@ def parse_value(text: str, where: str, sent: str, line: str) -> float:
     if value != value or value in (float("inf"), float("-inf")):
         raise TransientDeviceError(f"{where}: sent {sent!r}, got {line!r}: not a finite number")
     return value
+
+
+def template_fields(template: str) -> set[str] | None:
+    """Field names of a str.format template ('MA {steps:+d}' -> {'steps'}); None if malformed."""
+    import string
+
+    try:
+        return {name for _, name, _, _ in string.Formatter().parse(template) if name is not None}
+    except ValueError:
+        return None

@@ -16,7 +16,7 @@ from typing import Any
 from drivers.base import DeviceError, Reading, TransientDeviceError
 from drivers.line_stage import LineStage
 from drivers.messages import raise_first
-from drivers.replies import parse_steps, parse_value
+from drivers.replies import parse_steps, parse_value, template_fields
 from drivers.retry import RETRY_KEYS, with_retries
 from drivers.serial_link import SERIAL_KEYS, LineLink
 
@@ -72,17 +72,17 @@ def _regex(section: str, key: str, pattern: str | None, group: str | None = None
 def check_stage_settings(cfg: dict) -> list[tuple[str, str]]:
     """Problems in a serial-ascii [stage] section, as (key, message) pairs."""
     out = []
-    try:
-        cfg["move_abs"].format(steps=-123)
-        if "{steps}" not in cfg["move_abs"]:
-            out.append(("move_abs", "must contain {steps}"))
-    except (KeyError, IndexError, ValueError) as exc:
-        out.append(("move_abs", f"only the field {{steps}} is allowed ({exc})"))
-    if cfg["speed_command"] is not None:
+    for key, field in (("move_abs", "steps"), ("speed_command", "steps_per_s")):
+        if cfg[key] is None:
+            continue
+        fields = template_fields(cfg[key])
+        if fields != {field}:
+            out.append((key, f"must contain {{{field}}} and no other {{...}} field, got {cfg[key]!r}"))
+            continue
         try:
-            cfg["speed_command"].format(steps_per_s=100)
-        except (KeyError, IndexError, ValueError) as exc:
-            out.append(("speed_command", f"only the field {{steps_per_s}} is allowed ({exc})"))
+            cfg[key].format(**{field: 100})
+        except ValueError as exc:
+            out.append((key, f"bad format for {{{field}}} ({exc})"))
     for key, group in (("ack_reply", None), ("position_reply", "steps"), ("idle_reply", None),
                        ("busy_reply", None), ("stop_reply", None)):
         try:

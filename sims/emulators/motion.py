@@ -1,8 +1,8 @@
 """Motor motion shared by the controller emulators: constant speed, limit switches.
 
-The position walks linearly to the target; each whole step reached is passed
-to the physics (``physics.move_to(steps)``), so the simulated bench sees the
-same sequence of positions a real actuator would go through.
+The position walks linearly to the target; every whole step on the way is
+passed to the physics (``physics.move_to(steps)``), so the simulated bench
+sees the same sequence of positions a real actuator goes through.
 """
 from __future__ import annotations
 
@@ -32,16 +32,20 @@ class Motion:
         self.position = self._from + (self.target - self._from) * frac
         if frac >= 1.0:
             self.position = float(self.target)
-        step = self.steps()
-        if step != self._physics_at:
+        self._walk_to(self.steps())
+
+    def _walk_to(self, step: int) -> None:
+        """Pass every whole step from the last one to ``step`` to the physics, as a motor does."""
+        direction = 1 if step > self._physics_at else -1
+        for s in range(self._physics_at + direction, step + direction, direction):
             try:
-                self.physics.move_to(step)
+                self.physics.move_to(s)
             except Exception:   # the physics refuses (end stop, limit): the motor stalls there
                 self.position = float(self._physics_at)
                 self.target = self._physics_at
                 self.stalls += 1
                 return
-            self._physics_at = step
+            self._physics_at = s
 
     def start(self, target_steps: int, speed_steps_per_s: float, now: float) -> None:
         """Begin a move; a target past a limit switch stops at the switch."""
@@ -55,4 +59,5 @@ class Motion:
     def stop(self) -> None:
         self.target = self.steps()
         self.position = float(self.target)
+        self._walk_to(self.target)
         self.stops += 1

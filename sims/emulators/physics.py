@@ -47,3 +47,46 @@ def bench_from_rig(sections: dict, factory: str | None = None) -> LockedPhysics:
     else:
         from sims.instruments import SimBench as make
     return LockedPhysics(make(sections))
+
+
+class CombPhysics:
+    """A noise-free stand-in bench: a Lorentzian blip every ``spacing_steps``.
+
+    For protocol tests that need exact numbers: ``value_at(steps)`` is the
+    reading at any position, with no backlash, no noise and no clock.
+    ``render_frame`` draws a round spot whose peak follows the value.
+    """
+
+    def __init__(self, spacing_steps: float = 40.0, fwhm_steps: float = 6.0, height: float = 1.0,
+                 baseline: float = 0.1, phase_steps: float = 20.0):
+        self.spacing, self.fwhm, self.height = spacing_steps, fwhm_steps, height
+        self.baseline, self.phase = baseline, phase_steps
+        self.steps = 0
+        self.reads = 0
+        self.path: list[int] = []            # every position the motor passed through
+
+    def value_at(self, steps: float) -> float:
+        d = (steps - self.phase) % self.spacing
+        d = min(d, self.spacing - d)
+        return self.baseline + self.height / (1.0 + (2.0 * d / self.fwhm) ** 2)
+
+    def move_to(self, target_steps: int) -> None:
+        self.steps = int(target_steps)
+        self.path.append(self.steps)
+
+    def position_steps(self) -> int:
+        return self.steps
+
+    def read_value(self) -> float:
+        self.reads += 1
+        return self.value_at(self.steps)
+
+    def render_frame(self):
+        import numpy as np
+
+        yy, xx = np.mgrid[0:48, 0:64]
+        spot = np.exp(-((xx - 32.0) ** 2 + (yy - 24.0) ** 2) / (2 * 4.0 ** 2))
+        return np.clip(10 + 200 * self.value_at(self.steps) * spot, 0, 255).astype(np.uint8)
+
+    def truth(self) -> dict:
+        return {"spacing_steps": self.spacing}
