@@ -40,7 +40,8 @@ STAGE_KEYS: dict[str, Any] = {
     "speed_command": (str, None),     # template with {steps_per_s}, for [sweep] mode = "scan";
                                       # answered like a move (ack_reply)
     "identify_query": (str, None),    # e.g. "VER?"
-    "poll_s": 0.005,                  # pause between completion polls
+    "poll_s": 0.01,                   # longest pause between completion polls (they start at 0.5 ms
+                                      # and double, so short moves finish without waiting)
     "move_timeout_s": 60.0,           # longest a single move may take
     "position_tolerance_steps": 0,    # accepted |reported - target| after a move
     **RETRY_KEYS,
@@ -178,6 +179,7 @@ class SerialAsciiStage(LineStage):
 
     def _wait_until_done(self, cmd: str, target: int) -> None:
         deadline = time.monotonic() + self.cfg["move_timeout_s"]
+        pause = 0.0005
         while True:
             done, last = self._idle(target)
             if done:
@@ -191,7 +193,8 @@ class SerialAsciiStage(LineStage):
             if time.monotonic() > deadline:
                 raise DeviceError(f"{self.link.where()}: sent {cmd!r}, move not finished after "
                                   f"{self.cfg['move_timeout_s']:g} s (last reply {last!r}); stopped")
-            time.sleep(self.cfg["poll_s"])
+            time.sleep(pause)
+            pause = min(2 * pause, self.cfg["poll_s"])
 
     # -- continuous scan ([sweep] mode = "scan") -----------------------------------------
     def start_scan(self, end_steps: int, speed_steps_per_s: float) -> None:

@@ -91,7 +91,10 @@ class LineLink:
 
     def send(self, command: str) -> None:
         self._check_alive()
-        data = (command + self.eol).encode("ascii", errors="strict")
+        try:
+            data = (command + self.eol).encode("ascii")
+        except UnicodeEncodeError:
+            raise DeviceError(f"{self.where()}: command {command!r} is not plain ASCII; fix the rig file") from None
         try:
             self._ser.write(data)
             self._ser.flush()
