@@ -107,7 +107,10 @@ def run(args) -> int:
         state.calib = _calibration_view(rig.sections)
     except ImportError:
         pass
-    counter = StreamCounter(rig["counter"])
+    try:
+        counter = StreamCounter(rig["counter"])
+    except ValueError as exc:  # e.g. a log from a version with other counter settings
+        return fail(f"log {log.path}: counter settings: {exc}", 2)
     stopper = SignalStop(state)
     pause = threading.Event()
     player = Replay(log, rig, counter, state, speed=speed, out_log=out_log,

@@ -9,6 +9,7 @@ limited by zlib and the counter, not by Python.
 """
 from __future__ import annotations
 
+import array
 import json
 import threading
 import time
@@ -85,10 +86,11 @@ class Blips:
     """Blip events as columns (a night can hold a quarter of a million of them)."""
 
     def __init__(self):
-        self.i: list[int] = []
-        self.pos: list[float] = []
-        self.dir: list[int] = []
-        self.mode: list[int] = []
+        # array.array: 8 bytes an entry where a list of Python numbers costs 40
+        self.i = array.array("q")
+        self.pos = array.array("d")
+        self.dir = array.array("b")
+        self.mode = array.array("q")
 
     def add(self, i, pos, direction, mode) -> None:
         self.i.append(int(i))
@@ -213,6 +215,7 @@ class Replay:
         st.position_steps = int(c.position_steps[-1])
         st.direction = int(c.direction[-1])
         st.pass_index = int(c.pass_index[-1])
+        st.passes = max(st.passes, st.pass_index + 1)  # logs may run more passes than the rig says
         if c.t_s is not None:
             st.t_s = float(c.t_s[-1])
         k = min(n, st.recent.maxlen or n)
@@ -225,19 +228,26 @@ class Replay:
 
 # --- comparing two counts ---------------------------------------------------------
 
+def _nearest(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Index into sorted b of the element nearest each element of a (b not empty)."""
+    j = np.clip(np.searchsorted(b, a), 1, b.size - 1) if b.size > 1 else np.zeros(a.size, np.int64)
+    if b.size > 1:
+        j = np.where(np.abs(b[j - 1] - a) <= np.abs(b[j] - a), j - 1, j)
+    return j
+
+
 def _match(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np.ndarray]:
-    """Pair sorted sample indices a and b that lie within tol; boolean 'matched' masks."""
+    """Pair sorted sample indices: a and b match when each is the other's nearest, within tol.
+
+    Returns boolean 'matched' masks for a and b.
+    """
     ma, mb = np.zeros(a.size, bool), np.zeros(b.size, bool)
-    i = j = 0
-    while i < a.size and j < b.size:
-        if abs(a[i] - b[j]) <= tol:
-            ma[i] = mb[j] = True
-            i += 1
-            j += 1
-        elif a[i] < b[j]:
-            i += 1
-        else:
-            j += 1
+    if a.size == 0 or b.size == 0:
+        return ma, mb
+    ja, jb = _nearest(a, b), _nearest(b, a)
+    mutual = (jb[ja] == np.arange(a.size)) & (np.abs(a - b[ja]) <= tol)
+    ma[mutual] = True
+    mb[ja[mutual]] = True
     return ma, mb
 
 
