@@ -1,9 +1,10 @@
 """What a perfect counter would find in a simulated sweep: the simulator's truth.
 
 Rule for ``modes``: chip mode q counts when
-  1. the grating feedback crosses it during the rig's [sweep] (the mode
-     number M along the simulated path, mechanics and drift included, runs
-     past q by at least one blip FWHM on both sides: min M + 1/F <= q <= max M - 1/F), and
+  1. the grating feedback crosses it from half height to half height during
+     the rig's [sweep]: the mode number M along the simulated path (mechanics
+     and drift included) runs at least half a blip FWHM past q on both sides,
+     min M + 1/(2F) <= q <= max M - 1/(2F) (F the lasing finesse), and
   2. its blip is detectable: blip height (max - min of the noise-free
      detector value over one free spectral range around the mode, after
      clipping and quantization, or the camera's ROI sum) >= detect_k x the
@@ -82,7 +83,7 @@ def compute_truth(model: SimModel) -> dict:
     spacing_nm = model.mode_spacing_nm(lam_c)
     fsr_steps_c = spacing_nm / abs(tuning)
     fin = model.lasing_finesse(lam_c)
-    margin = 1.0 / fin
+    margin = 0.5 / fin  # half an FWHM in mode-number units (FWHM = FSR / F)
 
     lo, hi = float(x.min()), float(x.max())
     orders, centres = mode_centres_steps(model, lo - 2 * fsr_steps_c, hi + 2 * fsr_steps_c)
@@ -113,7 +114,7 @@ def compute_truth(model: SimModel) -> dict:
         "blip_fwhm_steps": fsr_steps_c / fin,
         "noise_sigma": sigma,
         "min_blip_height": float(heights[detectable].min()) if detectable.any() else 0.0,
-        "detect_rule": f"crossed by >= 1 FWHM and blip height >= {p['detect_k']:g} x noise sigma "
+        "detect_rule": f"crossed half height to half height, blip height >= {p['detect_k']:g} x noise sigma "
                        f"({p['detect_k'] * sigma:.4g})",
         "mode_orders": [int(q) for q in found_q],
         "mode_centres_steps": [round(float(c), 3) for c in found],

@@ -88,9 +88,9 @@ def test_truth_rule():
     centres = np.array(t["mode_centres_steps"])
     assert t["modes"] == len(centres) == len(t["mode_orders"])
     assert np.all(np.diff(t["mode_orders"]) == -1)  # consecutive chip modes, order falling with angle
-    # Every counted centre lies inside the swept range by at least one blip width.
-    assert centres.min() >= 1000 + t["blip_fwhm_steps"] * 0.9
-    assert centres.max() <= 5000 - t["blip_fwhm_steps"] * 0.9
+    # Every counted centre lies inside the swept range by at least half a blip width.
+    assert centres.min() >= 1000 + t["blip_fwhm_steps"] * 0.45
+    assert centres.max() <= 5000 - t["blip_fwhm_steps"] * 0.45
     # Spacing: steps x tuning rate = lambda^2 / (2 n_g L)  (Saleh & Teich)
     lam = t["wavelength_nm"]
     assert t["spacing_nm"] == pytest.approx(lam ** 2 / (2 * t["group_index"] * t["length_um"] * 1e3), rel=1e-12)
