@@ -105,7 +105,7 @@ class SimBench:
         if m.camera is None:
             k = self.reads - (self._chunk_end - CHUNK_READS)
             value = m.adc.convert(power + self._meter[k])
-            if value >= m.adc.full_scale_v:
+            if value >= m.adc.top_v:
                 self.saturated_reads += 1
         else:
             frame = m.camera.render(power, angle, stream(m.seed, STREAM_FRAME, self.reads)

@@ -76,7 +76,7 @@ class Adc:
     def __init__(self, bits: int, full_scale_v: float):
         self.codes = (1 << bits) - 1
         self.lsb_v = full_scale_v / self.codes
-        self.full_scale_v = full_scale_v
+        self.top_v = self.codes * self.lsb_v  # the top code's value (full scale, as rounded)
 
     def convert(self, v: float) -> float:
         code = math.floor(v / self.lsb_v + 0.5)
