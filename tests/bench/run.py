@@ -1,0 +1,165 @@
+"""Benchmarks, side by side in one run on this machine (not part of the test suite).
+
+    python tests/bench/run.py            # a table
+    python tests/bench/run.py --json     # one JSON object
+
+Each figure is measured here and now; ratios compare two things timed in the
+same run on the same data, so a busy or slow machine moves both.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+
+from daq.rig import load_rig  # noqa: E402
+
+N_TRACE = 10_000_000
+CHUNK = 4096
+GOALS = {
+    "counter_vs_find_peaks": (">=", 3.0), "counter_msamples_per_s": (">=", 50.0),
+    "engine_steps_per_s": (">=", 20000.0), "replay_msamples_per_s": (">=", 10.0),
+    "replay_peak_rss_mb": ("<=", 300.0), "log_bytes_per_sample": ("<=", 12.0),
+    "camera_fps_640x480": (">=", 2000.0),
+}
+
+
+def big_rig(n_samples: int):
+    """The default simulated rig stretched to n_samples (two passes, 1 step each)."""
+    half = n_samples // 2
+    return load_rig(None, [f"sweep.start=0", f"sweep.stop={half}", "sweep.step=1", "sweep.passes=2",
+                           "sweep.settle_s=0.0", f"stage.max_steps={half + 10}",
+                           f"sim.travel_max_steps={half + 100}"])
+
+
+def make_trace(n: int):
+    from sims.trace import simulate_trace
+    rig = big_rig(n)
+    t = time.perf_counter()
+    tr = simulate_trace(rig.sections)
+    return rig, tr, time.perf_counter() - t
+
+
+def bench_counter(rig, tr) -> dict:
+    from scipy.signal import find_peaks
+    from analysis.counter import StreamCounter
+    pos, d, v = tr.position_steps, tr.direction, tr.value
+    c = StreamCounter(rig["counter"])
+    t = time.perf_counter()
+    for a in range(0, v.size, CHUNK):
+        c.feed(pos[a:a + CHUNK], d[a:a + CHUNK], v[a:a + CHUNK])
+    c.finish()
+    t_counter = time.perf_counter() - t
+    noise = float(np.median(np.abs(np.diff(v[:100000])))) / 0.954 + 1e-12  # MAD of differences -> sigma
+    t = time.perf_counter()
+    peaks, _ = find_peaks(v, prominence=10 * noise, distance=10)
+    t_fp = time.perf_counter() - t
+    return {"counter_msamples_per_s": v.size / t_counter / 1e6,
+            "find_peaks_msamples_per_s": v.size / t_fp / 1e6,
+            "counter_vs_find_peaks": t_fp / t_counter,
+            "counter_modes": c.modes, "find_peaks_peaks": int(peaks.size)}
+
+
+def bench_engine(tmp: Path) -> dict:
+    from analysis.counter import StreamCounter
+    from daq.dashboard import PlainView
+    from daq.engine import Engine, LiveState
+    from daq.runlog import RunLog
+    from drivers.registry import open_devices
+    n = 200_000
+    rig = big_rig(n)
+    stage, det, bench = open_devices(rig.sections)
+    log = RunLog.create(tmp / "engine.db", rig)
+    state = LiveState()
+    eng = Engine(rig, stage, det, StreamCounter(rig["counter"]), log, state)
+    with open(os.devnull, "w") as null, PlainView(state, stream=null):
+        t = time.perf_counter()
+        eng.run()
+        dt = time.perf_counter() - t
+    log.close()
+    return {"engine_steps_per_s": log.n_samples / dt}
+
+
+def write_log(path: Path, rig, tr) -> None:
+    from daq.runlog import RunLog
+    log = RunLog.create(path, rig)
+    t_s = np.arange(tr.value.size) * 1e-4
+    for a in range(0, tr.value.size, 65536):
+        s = slice(a, a + 65536)
+        log.append_samples(t_s[s], tr.position_steps[s], tr.direction[s], tr.pass_index[s], tr.value[s],
+                           commit=False)
+    log.finish("finished", {})
+    log.close()
+
+
+def bench_replay(tmp: Path, rig, tr) -> dict:
+    path = tmp / "big.db"
+    write_log(path, rig, tr)
+    size = sum(p.stat().st_size for p in tmp.glob("big.db*"))
+    t = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, "-m", "daq", "replay", str(path), "--fast", "--json"],
+                            cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    _, status, usage = os.wait4(proc.pid, 0)
+    dt = time.perf_counter() - t
+    out = proc.stdout.read()
+    ok = os.waitstatus_to_exitcode(status) == 0
+    modes = json.loads(out).get("modes") if ok and out.strip() else None
+    return {"replay_msamples_per_s": tr.value.size / dt / 1e6,
+            "replay_peak_rss_mb": usage.ru_maxrss / 1024.0,   # Linux reports kB
+            "replay_ok": ok, "replay_modes": modes,
+            "log_bytes_per_sample": size / tr.value.size}
+
+
+def bench_camera() -> dict:
+    from drivers.camera import FrameReducer
+    from drivers.registry import driver_schema
+    keys = driver_schema("detector", "camera")
+    cfg = {k: (v[1] if isinstance(v, tuple) else v) for k, v in keys.items()}
+    cfg.update(roi=[200, 140, 240, 200], background="constant", background_level=12.0)
+    red = FrameReducer(cfg, "bench camera")
+    rng = np.random.default_rng(0)
+    frames = [rng.integers(0, 60, (480, 640), dtype=np.uint8) for _ in range(8)]
+    n = 3000
+    t = time.perf_counter()
+    for i in range(n):
+        red.reduce(frames[i % 8])
+    return {"camera_fps_640x480": n / (time.perf_counter() - t)}
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__)
+    ap.add_argument("--json", action="store_true")
+    ap.add_argument("--samples", type=int, default=N_TRACE)
+    args = ap.parse_args()
+    t_all = time.perf_counter()
+    out: dict = {}
+    rig, tr, t_gen = make_trace(args.samples)
+    out["trace_samples"] = int(tr.value.size)
+    out["trace_generation_s"] = t_gen
+    out.update(bench_counter(rig, tr))
+    with tempfile.TemporaryDirectory() as tmp:
+        out.update(bench_engine(Path(tmp)))
+        out.update(bench_replay(Path(tmp), rig, tr))
+    out.update(bench_camera())
+    out["total_s"] = time.perf_counter() - t_all
+    out["goals_met"] = {k: (out[k] >= g if op == ">=" else out[k] <= g) for k, (op, g) in GOALS.items()}
+    if args.json:
+        print(json.dumps(out))
+    else:
+        for k, v in out.items():
+            print(f"{k:28s} {v:.4g}" if isinstance(v, float) else f"{k:28s} {v}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
