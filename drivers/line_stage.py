@@ -5,7 +5,7 @@ import time
 
 from drivers.base import DeviceError, LimitError
 from drivers.retry import with_retries
-from drivers.serial_link import LineLink
+from drivers.serial_link import PORT_GONE, LineLink
 
 
 class LineStage:
@@ -72,7 +72,7 @@ class LineStage:
             self.link.flush_input()
             self.link.send(self.cfg["stop_command"])
             self._after_stop()
-        except DeviceError:
+        except (DeviceError, *PORT_GONE):
             pass
 
     def close(self) -> None:

@@ -24,6 +24,15 @@ SERIAL_KEYS = {
     "timeout_s": 1.0,      # longest wait for one reply line
 }
 
+try:                       # pyserial's POSIX port raises termios.error (not an OSError)
+    from termios import error as _TermiosError   # from tcflush on a vanished tty
+except ImportError:        # Windows
+    class _TermiosError(Exception):
+        pass
+
+# What a vanished port raises somewhere in pyserial.
+PORT_GONE = (serial.SerialException, OSError, _TermiosError)
+
 _CRLF = set("\r\n")
 _POLL_S = 0.02             # pyserial read granularity; the deadline is checked between reads
 
@@ -65,7 +74,7 @@ class LineLink:
             self._ser = serial.serial_for_url(
                 port, baudrate=baudrate, bytesize=bytesize, parity=parity, stopbits=stopbits,
                 timeout=min(_POLL_S, timeout_s), write_timeout=timeout_s)
-        except (serial.SerialException, OSError, ValueError) as exc:
+        except (*PORT_GONE, ValueError) as exc:
             raise DeviceError(f"{label} port {port}: cannot open it ({open_reason(exc)})") from None
 
     def where(self) -> str:
@@ -82,7 +91,7 @@ class LineLink:
         self._rx = b""
         try:
             self._ser.reset_input_buffer()
-        except (serial.SerialException, OSError) as exc:
+        except PORT_GONE as exc:
             raise self._dead("clearing its input", exc) from None
 
     def _check_alive(self) -> None:
@@ -100,7 +109,7 @@ class LineLink:
             self._ser.flush()
         except serial.SerialTimeoutException:
             raise TransientDeviceError(f"{self.where()}: sent {command!r}, write timed out after {self.timeout_s} s") from None
-        except (serial.SerialException, OSError) as exc:
+        except PORT_GONE as exc:
             raise self._dead(f"sending {command!r}", exc) from None
 
     def _take_line(self) -> str | None:
@@ -134,7 +143,7 @@ class LineLink:
                 break
             try:
                 chunk = self._ser.read(max(1, self._ser.in_waiting))
-            except (serial.SerialException, OSError) as exc:
+            except PORT_GONE as exc:
                 raise self._dead(f"waiting for the reply to {sent!r}", exc) from None
             self._rx += chunk
         waited = self.timeout_s if timeout_s is None else timeout_s
@@ -164,6 +173,6 @@ class LineLink:
     def close(self) -> None:
         try:
             self._ser.close()
-        except (serial.SerialException, OSError):
+        except PORT_GONE:
             pass
 

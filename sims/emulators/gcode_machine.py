@@ -30,7 +30,7 @@ def parse_words(line: str) -> list[tuple[str, float]]:
 class GcodeMachine(Handler):
     eol_in = "any-crlf"
 
-    def __init__(self, physics, units_per_step: float, axis: str = "X", start_steps: int = 0,
+    def __init__(self, physics, units_per_step: float, axis: str = "X", start_steps: int | None = None,
                  min_steps: int = -1_000_000, max_steps: int = 1_000_000, planner_slots: int = 4):
         self.units_per_step, self.axis = units_per_step, axis.upper()
         self.motion = Motion(physics, start_steps, min_steps, max_steps)

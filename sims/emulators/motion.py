@@ -8,16 +8,20 @@ from __future__ import annotations
 
 
 class Motion:
-    def __init__(self, physics, start_steps: int = 0, min_steps: int = -1_000_000,
+    def __init__(self, physics, start_steps: int | None = None, min_steps: int = -1_000_000,
                  max_steps: int = 1_000_000):
+        """``start_steps`` None: the motor is where the physics is (no move at power-up)."""
         self.physics = physics
+        if start_steps is None:
+            start_steps = int(physics.position_steps())
         self.min_steps, self.max_steps = min_steps, max_steps
         self.position = float(start_steps)      # motor position in steps (commanded frame)
         self.target = start_steps
         self._from, self._t0, self._dur = self.position, 0.0, 0.0
         self._physics_at = start_steps
         self.moves = self.stops = self.stalls = 0
-        physics.move_to(start_steps)
+        if physics.position_steps() != start_steps:
+            physics.move_to(start_steps)
 
     def steps(self) -> int:
         return round(self.position)

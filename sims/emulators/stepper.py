@@ -40,7 +40,7 @@ class StepperProtocol:
     speed_steps_per_s: float = 50000.0
     min_travel_steps: int = -1_000_000  # hardware limit switches
     max_travel_steps: int = 1_000_000
-    start_steps: int = 0
+    start_steps: int | None = None      # None: wherever the physics is at power-up
 
     @classmethod
     def from_json(cls, text: str) -> "StepperProtocol":
