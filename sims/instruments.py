@@ -13,6 +13,7 @@ Noise is drawn in chunks from per-quantity streams indexed by the read number
 from __future__ import annotations
 
 import math
+import time
 from typing import Any
 
 import numpy as np
@@ -57,10 +58,41 @@ class SimBench:
         self.detector = SimDetector(self)
         self._truth: dict | None = None
         self._frame_camera = None
+        self._scan: tuple | None = None   # (t0_s, start, target, speed) while scanning
 
     # -- mechanics ----------------------------------------------------------------
     def position_steps(self) -> int:
+        if self._scan is not None:
+            self._advance_scan()
         return self.mount.s
+
+    def start_scan(self, target_steps: int, speed_steps_per_s: float) -> None:
+        """Begin a constant-speed move to target; returns at once.
+
+        A scan runs on the wall clock (time.monotonic), since the engine
+        places each reading by the clock too: the one place the simulator is
+        not paced by its own read counter.
+        """
+        target = int(target_steps)
+        self.move_to(self.mount.s)          # limits check of the start
+        if (self.min_steps is not None and target < self.min_steps) or \
+                (self.max_steps is not None and target > self.max_steps):
+            raise LimitError(f"sim stage: scan to {target} refused, outside soft limits "
+                             f"[{self.min_steps}, {self.max_steps}]")
+        self._scan = (time.monotonic(), self.mount.s, target, float(speed_steps_per_s))
+
+    def is_moving(self) -> bool:
+        if self._scan is not None:
+            self._advance_scan()
+        return self._scan is not None
+
+    def _advance_scan(self) -> None:
+        t0, p0, target, speed = self._scan
+        d = 1 if target >= p0 else -1
+        pos = p0 + d * speed * (time.monotonic() - t0)
+        if (pos - target) * d >= 0:
+            pos, self._scan = target, None
+        self.mount.move(int(round(pos)))
 
     def move_to(self, target_steps: int) -> None:
         target = int(target_steps)
@@ -92,6 +124,8 @@ class SimBench:
             self._refill()
         k = self.reads - (self._chunk_end - CHUNK_READS)
         t = self.reads * self.dt_s
+        if self._scan is not None:
+            self._advance_scan()
         x = self.mount.actual()
         angle = m.lever.angle_deg(x)
         lam = m.two_d_over_m * math.sin(angle * (math.pi / 180.0))
@@ -149,13 +183,18 @@ class SimStage:
         self._bench = bench
         self.move_to = bench.move_to
         self.position_steps = bench.position_steps
+        self.start_scan = bench.start_scan
+        self.is_moving = bench.is_moving
 
     def identify(self) -> str:
         p = self._bench.model.params
         return f"modetick simulated stage (scenario {p['scenario']}, seed {p['seed']})"
 
     def stop(self) -> None:
-        """Moves complete inside move_to, so there is never motion to stop."""
+        """Step moves complete inside move_to; a scan is halted where it is."""
+        if self._bench._scan is not None:
+            self._bench._advance_scan()
+            self._bench._scan = None
 
     def close(self) -> None:
         self.stop()
