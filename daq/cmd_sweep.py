@@ -101,7 +101,7 @@ def run(args) -> int:
         return fail(f"cannot open devices: {exc}", 1)
 
     status, reason, code = "finished", "", 0
-    log = None
+    log = engine = counter = None
     try:
         if resume_log is not None:
             log = resume_log
@@ -157,11 +157,15 @@ def run(args) -> int:
         _safe_stop(stage, detector)
 
     state.status = status
+    if log is None or engine is None:
+        return fail(reason or "interrupted before the run started", code or 1)
+    engine.finish_counting()
     summary = build_summary(log, rig.sections, status, counter=counter, bench=bench, reason=reason)
     log.finish(status, summary, reason)
     log.close()
     if args.json:
-        print(json.dumps(summary, indent=None))
+        # The mode map is in the log (and `modetick modes`); keep stdout to the results.
+        print(json.dumps({k: v for k, v in summary.items() if k != "mode_map"}))
     else:
         _print_table(summary)
     if code == 1:

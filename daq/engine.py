@@ -242,6 +242,18 @@ class Engine:
             self.flush()
             self._next_flush = now + FLUSH_S
 
+    def finish_counting(self) -> None:
+        """End of the stream: the counter's last open crossing is counted and logged.
+
+        The counter state in the log stays the one saved with the last block,
+        so a run stopped here can still be resumed as if never finished.
+        """
+        events = self.counter.finish()
+        rows = [(ev.index, self.state.t_s, ev.kind, ev.position_steps, ev.direction,
+                 ev.mode if ev.kind == "blip" else None, ev.height, ev.width_steps, None) for ev in events]
+        self.log.append_events(rows, commit=True)
+        self.state.estimate = self.counter.estimate()
+
     def _warn_once(self, key: str, detail: str, pos: float | None = None) -> None:
         if key not in self._warned:
             self._warned.add(key)

@@ -1,0 +1,121 @@
+"""Calibration and laser physics: steps -> angle -> Littrow wavelength -> mode spacing -> chip length.
+
+Relations (standard sources):
+* Littrow grating equation, order m, groove spacing d: m*lambda = 2*d*sin(theta)
+  (Palmer, Diffraction Grating Handbook).
+* Tuning rate in Littrow: d(lambda)/d(theta) = 2*d*cos(theta)/m (same source).
+* Chip mode spacing (free spectral range): delta_lambda = lambda^2 / (2*n_g*L),
+  with the group index n_g, not the phase index (Saleh & Teich, Fundamentals
+  of Photonics; Coldren, Corzine & Mashanovitch, Diode Lasers and Photonic
+  Integrated Circuits). Hence L = lambda^2 / (2*n_g*delta_lambda).
+
+Units: steps, degrees, lines per mm, nm, um. The stage calibration is linear:
+angle_deg = angle_at_zero_deg + deg_per_step * steps.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class Calibration:
+    """The rig keys that turn steps into wavelength, with standard uncertainties."""
+
+    deg_per_step: float
+    angle_at_zero_deg: float
+    lines_per_mm: float
+    order: int = 1
+    deg_per_step_u: float = 0.0
+    angle_at_zero_deg_u: float = 0.0
+    lines_per_mm_u: float = 0.0
+
+    @classmethod
+    def from_sections(cls, sections: dict | None) -> "Calibration | None":
+        """From a rig's sections; None when any calibration key is missing."""
+        if not sections:
+            return None
+        st, g = sections.get("stage", {}), sections.get("grating", {})
+        need = (st.get("deg_per_step"), st.get("angle_at_zero_deg"), g.get("lines_per_mm"))
+        if any(v is None for v in need):
+            return None
+        return cls(float(need[0]), float(need[1]), float(need[2]), int(g.get("order", 1) or 1),
+                   float(st.get("deg_per_step_u", 0.0) or 0.0),
+                   float(st.get("angle_at_zero_deg_u", 0.0) or 0.0),
+                   float(g.get("lines_per_mm_u", 0.0) or 0.0))
+
+
+def groove_spacing_nm(lines_per_mm: float) -> float:
+    return 1e6 / lines_per_mm
+
+
+def angle_deg(steps: float, deg_per_step: float, angle_at_zero_deg: float) -> float:
+    return angle_at_zero_deg + deg_per_step * steps
+
+
+def littrow_wavelength_nm(angle: float, lines_per_mm: float, order: int = 1) -> float:
+    """m*lambda = 2*d*sin(theta), theta in degrees (Palmer)."""
+    return 2.0 * groove_spacing_nm(lines_per_mm) * math.sin(math.radians(angle)) / order
+
+
+def littrow_angle_deg(wavelength_nm: float, lines_per_mm: float, order: int = 1) -> float:
+    s = order * wavelength_nm / (2.0 * groove_spacing_nm(lines_per_mm))
+    if not -1.0 <= s <= 1.0:
+        raise ValueError(f"no Littrow angle: {wavelength_nm} nm in order {order} needs sin(theta) = {s:.3f}")
+    return math.degrees(math.asin(s))
+
+
+def tuning_nm_per_deg(angle: float, lines_per_mm: float, order: int = 1) -> float:
+    """d(lambda)/d(theta) = 2*d*cos(theta)/m, per degree (Palmer)."""
+    return 2.0 * groove_spacing_nm(lines_per_mm) * math.cos(math.radians(angle)) / order * math.pi / 180.0
+
+
+def spacing_nm_at(spacing_steps: float, centre_steps: float, deg_per_step: float, angle_at_zero_deg: float,
+                  lines_per_mm: float, order: int = 1) -> tuple[float, float]:
+    """(mode spacing in nm, wavelength in nm) at centre_steps.
+
+    The spacing is the wavelength difference across one spacing centred on
+    centre_steps (exact for the linear stage, no small-angle step).
+    """
+    half = 0.5 * spacing_steps
+    lam = lambda s: littrow_wavelength_nm(angle_deg(s, deg_per_step, angle_at_zero_deg), lines_per_mm, order)  # noqa: E731
+    return abs(lam(centre_steps + half) - lam(centre_steps - half)), lam(centre_steps)
+
+
+def chip_length_um(wavelength_nm: float, spacing_nm: float, group_index: float) -> float:
+    """L = lambda^2 / (2 * n_g * delta_lambda) (Coldren et al.; Saleh & Teich), in um."""
+    return wavelength_nm ** 2 / (2.0 * group_index * spacing_nm) / 1000.0
+
+
+def length_from_steps(spacing_steps: float, centre_steps: float, deg_per_step: float, angle_at_zero_deg: float,
+                      lines_per_mm: float, group_index: float, order: int = 1) -> float:
+    """The whole chain as one function of its inputs (what the uncertainty propagates)."""
+    sp_nm, lam = spacing_nm_at(spacing_steps, centre_steps, deg_per_step, angle_at_zero_deg, lines_per_mm, order)
+    return chip_length_um(lam, sp_nm, group_index)
+
+
+def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None, sections: dict,
+                     centre_steps: float | None = None) -> dict | None:
+    """Spacing in nm, wavelength and chip length for the dashboard (first-order uncertainty).
+
+    The full budget (all inputs, Monte Carlo check) comes from the offline
+    analysis; here only the spacing's own uncertainty and n_g's are carried.
+    """
+    cal = Calibration.from_sections(sections)
+    if cal is None or not spacing_steps:
+        return None
+    sw = sections.get("sweep", {})
+    if centre_steps is None:
+        centre_steps = 0.5 * (sw.get("start", 0) + sw.get("stop", 0))
+    sp_nm, lam = spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step, cal.angle_at_zero_deg,
+                               cal.lines_per_mm, cal.order)
+    rel_sp = (spacing_steps_u or 0.0) / spacing_steps
+    out = {"spacing_nm": sp_nm, "spacing_nm_u": sp_nm * rel_sp, "wavelength_nm": lam,
+           "length_um": None, "length_um_u": None}
+    chip = sections.get("chip", {})
+    ng = chip.get("group_index")
+    if ng:
+        L = chip_length_um(lam, sp_nm, ng)
+        rel_ng = (chip.get("group_index_u") or 0.0) / ng
+        out["length_um"], out["length_um_u"] = L, L * math.hypot(rel_sp, rel_ng)
+    return out

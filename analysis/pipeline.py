@@ -1,0 +1,229 @@
+"""The offline analysis of a whole trace: count, refine, calibrate, propagate uncertainty.
+
+``analyze_trace`` is the one entry point the CLI, replay and reports call.
+It runs the same streaming counter as a live run (so the count is the live
+count), then works on the counter's mode table:
+* spacing in steps = slope of mode centre against mode number (weighted
+  least squares, with its standard error; analysis.counter.fit_spacing);
+* a spectral cross-check of the period (Lomb-Scargle periodogram of each
+  pass against position, scipy.signal.lombscargle);
+* gaps in the mode numbering flagged as probable missed modes;
+* per-pass counts and spacings;
+* with a calibration: spacing in nm at the centre of the counted range,
+  chip length, and their uncertainties by the GUM (JCGM 100) with a
+  Monte Carlo check (JCGM 101) and a budget;
+* without one: the by-count route, N modes over the counted span.
+"""
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from analysis import physics
+from analysis.counter import StreamCounter, fit_spacing, mechanical_centres
+from analysis.uncertainty import Input, gum, monte_carlo
+
+FEED_CHUNK = 65536
+
+
+def directions_from_positions(position_steps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(direction, pass_index) from commanded positions in time order.
+
+    A sample takes the direction of the move that brought the stage there;
+    repeated positions keep the previous direction; a change of direction
+    starts a new pass.
+    """
+    pos = np.asarray(position_steps, dtype=np.float64)
+    n = pos.size
+    if n == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    step = np.sign(np.diff(pos, prepend=pos[0]))
+    nz = np.flatnonzero(step)
+    if nz.size == 0:
+        return np.ones(n, np.int64), np.zeros(n, np.int64)
+    idx = np.zeros(n, np.int64)
+    idx[nz] = nz
+    np.maximum.accumulate(idx, out=idx)
+    d = step[idx]
+    d[: nz[0]] = step[nz[0]]           # before the first move: the first move's direction
+    d = d.astype(np.int64)
+    pass_index = np.concatenate([[0], np.cumsum(d[1:] != d[:-1])]).astype(np.int64)
+    return d, pass_index
+
+
+def count(position_steps, value, direction, counter_settings=None) -> StreamCounter:
+    """Feed the whole trace through a fresh streaming counter, as a live run would."""
+    c = StreamCounter(counter_settings)
+    for a in range(0, value.size, FEED_CHUNK):
+        c.feed(position_steps[a:a + FEED_CHUNK], direction[a:a + FEED_CHUNK], value[a:a + FEED_CHUNK])
+    c.finish()
+    return c
+
+
+def spectral_period_steps(position_steps, value, pass_index, spacing_hint: float | None) -> float | None:
+    """Dominant period of the blips against position (Lomb-Scargle, longest pass).
+
+    Searched between 0.5 and 2 times the counter's spacing, so the cross-check
+    answers "is the period the counter found really in the data".
+    """
+    from scipy.signal import lombscargle
+    if spacing_hint is None or value.size < 64:
+        return None
+    passes, counts = np.unique(pass_index, return_counts=True)
+    sel = pass_index == passes[np.argmax(counts)]
+    x = position_steps[sel].astype(float)
+    y = value[sel] - np.median(value[sel])
+    if np.ptp(x) < 4 * spacing_hint:
+        return None
+    if x.size > 20000:                   # keep it quick on long passes
+        keep = np.linspace(0, x.size - 1, 20000).astype(int)
+        x, y = x[keep], y[keep]
+    periods = np.linspace(0.5 * spacing_hint, 2.0 * spacing_hint, 1500)
+    power = lombscargle(x, y, 2 * np.pi / periods, precenter=True)
+    best = int(np.argmax(power))
+    # refine around the best period on a finer grid
+    fine = np.linspace(periods[max(best - 2, 0)], periods[min(best + 2, periods.size - 1)], 400)
+    pf = lombscargle(x, y, 2 * np.pi / fine, precenter=True)
+    return float(fine[int(np.argmax(pf))])
+
+
+def find_gaps(modes: np.ndarray) -> list[dict]:
+    """Runs of mode numbers never seen between seen ones: probable missed modes."""
+    out = []
+    m = np.sort(modes)
+    for a, b in zip(m[:-1], m[1:]):
+        if b - a > 1:
+            out.append({"after_mode": int(a), "missing": int(b - a - 1)})
+    return out
+
+
+def per_pass_results(ct: dict, pass_of_index: np.ndarray) -> list[dict]:
+    out = []
+    if ct["index"].size == 0:
+        return out
+    p_of = pass_of_index[np.clip(ct["index"], 0, pass_of_index.size - 1)]
+    for p in np.unique(p_of):
+        sel = p_of == p
+        sp, su, _ = fit_spacing(ct["mode"][sel], ct["position_steps"][sel])
+        out.append({"pass": int(p), "direction": int(ct["direction"][sel][0]),
+                    "crossings": int(sel.sum()), "modes": int(np.unique(ct["mode"][sel]).size),
+                    "spacing_steps": sp, "spacing_steps_u": su})
+    return out
+
+
+def _budget_inputs(cal: physics.Calibration, chip: dict, spacing_steps: float, spacing_u: float,
+                   centre_steps: float) -> list[Input]:
+    return [
+        Input("spacing_steps (fit)", spacing_steps, spacing_u, "slope of mode centre vs mode number"),
+        Input("centre_steps", centre_steps, 0.0, "centre of the counted range"),
+        Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
+        Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
+        Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
+        Input("[chip] group_index", float(chip["group_index"]), float(chip.get("group_index_u") or 0.0),
+              "rig file"),
+    ]
+
+
+def calibrated_results(cal: physics.Calibration, chip: dict, spacing_steps: float, spacing_u: float,
+                       centre_steps: float, mc_draws: int = 100_000) -> dict:
+    order = cal.order
+
+    def spacing_nm_f(sp, c, k, a0, lpm, ng):
+        return physics.spacing_nm_at(sp, c, k, a0, lpm, order)[0]
+
+    def length_f(sp, c, k, a0, lpm, ng):
+        return physics.length_from_steps(sp, c, k, a0, lpm, ng, order)
+
+    def length_vec(sp, c, k, a0, lpm, ng):
+        d = 1e6 / lpm
+        lam = lambda s: 2 * d * np.sin(np.radians(a0 + k * s)) / order  # noqa: E731
+        dl = np.abs(lam(c + sp / 2) - lam(c - sp / 2))
+        return lam(c) ** 2 / (2 * ng * dl) / 1000.0
+
+    sp_nm, lam = physics.spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step, cal.angle_at_zero_deg,
+                                       cal.lines_per_mm, order)
+    chip = chip or {}
+    ng = chip.get("group_index")
+    ng_in = ng if ng else 1.0
+    inputs = _budget_inputs(cal, {"group_index": ng_in, "group_index_u": chip.get("group_index_u", 0.0)},
+                            spacing_steps, spacing_u, centre_steps)
+    _, sp_nm_u, _ = gum(spacing_nm_f, inputs)
+    out: dict[str, Any] = {"spacing_nm": sp_nm, "spacing_nm_u": sp_nm_u, "wavelength_nm": lam,
+                           "length_um": None, "length_um_u": None, "budget": None}
+    # wavelength uncertainty at the centre (angle offset and groove density)
+    lam_f = lambda sp, c, k, a0, lpm, g: physics.littrow_wavelength_nm(a0 + k * c, lpm, order)  # noqa: E731
+    out["wavelength_nm_u"] = gum(lam_f, inputs)[1]
+    if ng:
+        L, L_u, budget = gum(length_f, inputs)
+        mc = monte_carlo(length_vec, inputs, draws=mc_draws)
+        out.update(length_um=L, length_um_u=L_u, budget=budget, length_um_monte_carlo=mc)
+    return out
+
+
+def analyze_trace(position_steps, value, direction=None, pass_index=None, sections: dict | None = None,
+                  counter_settings: dict | None = None) -> dict:
+    """Count and refine one trace; see the module docstring. JSON-ready dict."""
+    pos = np.asarray(position_steps, dtype=np.float64)
+    val = np.asarray(value, dtype=np.float64)
+    if pos.size != val.size:
+        raise ValueError(f"position ({pos.size}) and intensity ({val.size}) differ in length")
+    if direction is None or pass_index is None:
+        d_guess, p_guess = directions_from_positions(pos)
+        direction = d_guess if direction is None else direction
+        pass_index = p_guess if pass_index is None else pass_index
+    direction = np.asarray(direction, dtype=np.int64)
+    pass_index = np.asarray(pass_index, dtype=np.int64)
+
+    c = count(pos, val, direction, counter_settings)
+    est = c.estimate()
+    mc = c.mode_centres()
+    ct = c.crossing_table()
+    backlash, mech = mechanical_centres(mc)
+    ok = np.isfinite(mech)
+    weights = (mc["n_up"] + mc["n_down"])[ok]
+    spacing, spacing_u, fit = fit_spacing(mc["mode"][ok], mech[ok], weights)
+    centre = fit.get("centre_steps") if fit else None
+
+    result: dict[str, Any] = {
+        "modes": c.modes, "crossings": c.crossings,
+        "spacing_steps": spacing, "spacing_steps_u": spacing_u,
+        "spacing_nm": None, "spacing_nm_u": None, "wavelength_nm": None,
+        "length_um": None, "length_um_u": None,
+        "backlash_steps": backlash, "budget": None,
+        "live_estimate": est,
+        "fit": fit,
+    }
+    result["spectral_period_steps"] = spectral_period_steps(pos, val, pass_index, spacing)
+    result["gaps"] = find_gaps(mc["mode"])
+    result["per_pass"] = per_pass_results(ct, pass_index)
+    result["mode_map"] = [
+        {"mode": int(k), "centre_up_steps": _f(u), "centre_down_steps": _f(dn), "centre_steps": _f(m),
+         "n_up": int(nu), "n_down": int(nd), "height": _f(h), "width_steps": _f(w)}
+        for k, u, dn, m, nu, nd, h, w in zip(mc["mode"], mc["centre_up"], mc["centre_down"], mech,
+                                             mc["n_up"], mc["n_down"], mc["height"], mc["width_steps"])]
+
+    cal = physics.Calibration.from_sections(sections)
+    if spacing and cal is not None and centre is not None:
+        chip = (sections or {}).get("chip", {})
+        res = calibrated_results(cal, chip, spacing, spacing_u or 0.0, centre)
+        result.update(res)
+        for row in result["mode_map"]:
+            cs = row["centre_steps"]
+            row["wavelength_nm"] = None if cs is None else physics.littrow_wavelength_nm(
+                physics.angle_deg(cs, cal.deg_per_step, cal.angle_at_zero_deg), cal.lines_per_mm, cal.order)
+    # The by-count route: N modes over the span they cover (no fit, no calibration needed).
+    if ok.sum() >= 2:
+        span = float(np.nanmax(mech) - np.nanmin(mech))
+        n_int = int(mc["mode"][ok].max() - mc["mode"][ok].min())
+        if n_int > 0:
+            result["by_count"] = {"span_steps": span, "intervals": n_int, "spacing_steps": span / n_int,
+                                  # +-half a spacing at each end, uniform: u = spacing/sqrt(6)/N
+                                  "spacing_steps_u": span / n_int / math.sqrt(6) / n_int}
+    return result
+
+
+def _f(x) -> float | None:
+    x = float(x)
+    return x if math.isfinite(x) else None
