@@ -99,7 +99,7 @@ def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None,
     """Spacing in nm, wavelength and chip length for the dashboard (first-order uncertainty).
 
     The full budget (all inputs, Monte Carlo check) comes from the offline
-    analysis; here only the spacing's own uncertainty and n_g's are carried.
+    analysis; here the spacing fit, the step calibration and n_g are carried.
     """
     cal = Calibration.from_sections(sections)
     if cal is None or not spacing_steps:
@@ -109,7 +109,8 @@ def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None,
         centre_steps = 0.5 * (sw.get("start", 0) + sw.get("stop", 0))
     sp_nm, lam = spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step, cal.angle_at_zero_deg,
                                cal.lines_per_mm, cal.order)
-    rel_sp = (spacing_steps_u or 0.0) / spacing_steps
+    # Relative u of the spacing in nm: the fit's and the step calibration's.
+    rel_sp = math.hypot((spacing_steps_u or 0.0) / spacing_steps, cal.deg_per_step_u / cal.deg_per_step)
     out = {"spacing_nm": sp_nm, "spacing_nm_u": sp_nm * rel_sp, "wavelength_nm": lam,
            "length_um": None, "length_um_u": None}
     chip = sections.get("chip", {})

@@ -6,6 +6,7 @@ LiveState, so drawing never holds up the step loop. The terminal layout fits
 """
 from __future__ import annotations
 
+import math
 import os
 import sys
 import threading
@@ -75,11 +76,15 @@ def strip_chart(recent: list[tuple[int, float]], blips: set[int], width: int) ->
 
 
 def _fmt_u(x, u, digits: int = 2) -> str:
+    """x ± u with u to two significant digits and x to the same decimal place."""
     if x is None:
         return "…"
-    if u is None or u != u:
+    if u is None or u != u or u <= 0:
         return f"{x:.{digits}f}"
-    return f"{x:.{digits}f} ± {u:.{digits}f}"
+    dec = min(max(digits, 1 - math.floor(math.log10(u))), 8)
+    if u >= 10:
+        dec = 0
+    return f"{x:.{dec}f} ± {u:.{dec}f}"
 
 
 def _clock(seconds: float | None) -> str:

@@ -24,7 +24,7 @@ from drivers.base import DeviceError
 
 FLUSH_S = 0.25
 FLUSH_SAMPLES = 4096
-RECENT = 600          # readings kept for the dashboard's strip chart
+RECENT = 900          # readings kept for the dashboard's strip chart
 STALL_READS = 500     # identical readings in a row before the detector is called stuck
 MIN_FREE_BYTES = 50_000_000
 POSITION_TOLERANCE_STEPS = 1
