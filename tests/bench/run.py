@@ -35,18 +35,19 @@ GOALS = {
 
 
 def big_rig(n_samples: int):
-    """The default simulated rig stretched to n_samples (two passes, 1 step each)."""
-    half = n_samples // 2
-    return load_rig(None, [f"sweep.start=0", f"sweep.stop={half}", "sweep.step=1", "sweep.passes=2",
-                           "sweep.settle_s=0.0", f"stage.max_steps={half + 10}",
-                           f"sim.travel_max_steps={half + 100}"])
+    """The default simulated rig run back and forth over its own range until it
+    has n_samples: an overnight run of many passes over the same modes."""
+    sweep = load_rig(None)["sweep"]
+    per_pass = abs(sweep["stop"] - sweep["start"]) // sweep["step"]
+    passes = max(2, -(-n_samples // per_pass))
+    return load_rig(None, [f"sweep.passes={passes}", "sweep.settle_s=0.0"])
 
 
 def make_trace(n: int):
     from sims.trace import simulate_trace
     rig = big_rig(n)
     t = time.perf_counter()
-    tr = simulate_trace(rig.sections)
+    tr = simulate_trace(rig.sections, n_samples=n)
     return rig, tr, time.perf_counter() - t
 
 
