@@ -139,6 +139,7 @@ def run(args) -> int:
               f"(run `modetick analyze` for that)", file=sys.stderr)
     result = summarise(out_log or log, rig.sections, status, counter, refine)
     result["replay_of"] = str(log.path)
+    result["samples_replayed"] = player.samples_done
     result["replay_s"] = round(player.wall_s, 3)
     result["msamples_per_s"] = round(player.samples_done / player.wall_s / 1e6, 2) if player.wall_s > 0 else None
     if args.set:
@@ -149,7 +150,8 @@ def run(args) -> int:
         out_log.close()
     log.close()
     if args.json:
-        print(json.dumps(result))
+        # As `sweep --json`: the mode map stays in the log (and `modetick modes`).
+        print(json.dumps({k: v for k, v in result.items() if k != "mode_map"}))
     else:
         print_result(result)
     return code
@@ -179,5 +181,8 @@ def print_result(result: dict) -> None:
             con.print(f"mode {word}: {m['mode']} at {', '.join(f'{p:g}' for p in m['positions_steps'])} steps")
         if len(ch[key]) > SHOWN:
             con.print(f"... {len(ch[key]) - SHOWN} more modes {word} (--json lists them)")
+    for word, key in (("split over two replayed modes", "modes_split"), ("merged into one", "modes_merged")):
+        if ch.get(key):
+            con.print(f"modes {word}: {', '.join(map(str, ch[key][:SHOWN]))}")
     con.print(f"blips lost {ch['blips_lost']}, gained {ch['blips_gained']}; "
               f"{result['samples']:,} samples in {result['replay_s']:.2f} s")

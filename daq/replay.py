@@ -192,17 +192,31 @@ class Replay:
             self._show(last, [], self.wall_s)
         if out is not None:
             out.set_meta(counter_state=json.dumps(counter.get_state()))
+        self._finish_counting(last)
         return status
 
+    def _finish_counting(self, last: Chunk | None) -> None:
+        """End of the stream, as the live run ends (Engine.finish_counting): the open crossing counts."""
+        events = self.counter.finish()
+        for ev in events:
+            if ev.kind == "blip":
+                self.blips.add(ev.index, ev.position_steps, ev.direction, ev.mode)
+        if self.out_log is not None and last is not None:
+            self.out_log.append_events(self._event_rows(last, events), commit=True)
+        self.state.estimate = self.counter.estimate()
+
     def _write(self, c: Chunk, events) -> None:
-        out = self.out_log
+        self.out_log.append_samples(c.t_s, c.position_steps, c.direction, c.pass_index, c.value, c.spread,
+                                    c.aux, commit=False)
+        self.out_log.append_events(self._event_rows(c, events))
+
+    @staticmethod
+    def _event_rows(c: Chunk, events) -> list[tuple]:
+        """Event rows as the engine logs them, timed by the sample they belong to."""
         n = len(c)
-        out.append_samples(c.t_s, c.position_steps, c.direction, c.pass_index, c.value, c.spread,
-                           c.aux, commit=False)
-        rows = [(ev.index, float(c.t_s[min(max(ev.index - c.first_i, 0), n - 1)]), ev.kind,
+        return [(ev.index, float(c.t_s[min(max(ev.index - c.first_i, 0), n - 1)]), ev.kind,
                  ev.position_steps, ev.direction, ev.mode if ev.kind == "blip" else None,
                  ev.height, ev.width_steps, None) for ev in events]
-        out.append_events(rows)
 
     def _show(self, c: Chunk, events, t_run_s: float) -> None:
         """Refresh the dashboard's LiveState (throttled: drawing is a few Hz anyway)."""
@@ -237,18 +251,15 @@ def _nearest(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def _match(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np.ndarray]:
-    """Pair sorted sample indices: a and b match when each is the other's nearest, within tol.
+    """Pair sorted sample indices: a[i] and b[j] pair when each is the other's nearest, within tol.
 
-    Returns boolean 'matched' masks for a and b.
+    Returns the paired positions (i, j) as two index arrays.
     """
-    ma, mb = np.zeros(a.size, bool), np.zeros(b.size, bool)
     if a.size == 0 or b.size == 0:
-        return ma, mb
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
     ja, jb = _nearest(a, b), _nearest(b, a)
     mutual = (jb[ja] == np.arange(a.size)) & (np.abs(a - b[ja]) <= tol)
-    ma[mutual] = True
-    mb[ja[mutual]] = True
-    return ma, mb
+    return np.flatnonzero(mutual), ja[mutual]
 
 
 def _listed(blips: Blips, idx: np.ndarray) -> list[dict]:
@@ -266,26 +277,47 @@ def _modes_listed(blips: Blips, modes: list[int]) -> list[dict]:
     return out
 
 
+def _many_to_one(src: np.ndarray, dst: np.ndarray) -> list[int]:
+    """Modes of src whose paired blips fall into more than one mode of dst."""
+    if src.size == 0:
+        return []
+    pairs = np.unique(np.stack([src, dst]), axis=1)
+    keys, counts = np.unique(pairs[0], return_counts=True)
+    return [int(k) for k in keys[counts > 1]]
+
+
 def compare_blips(logged: Blips, replayed: Blips) -> dict:
     """What the replay counted differently from the logged run: blips and modes, and where.
 
     Blips are paired by sample index (the same samples, so the same blip lands
     on nearly the same sample whatever the settings) within 40 % of the usual
-    gap between blips.
+    gap between blips. A mode is lost when none of its logged blips pairs with
+    a replayed one, gained the other way round; paired blips can still be
+    numbered differently: a logged mode split over two replayed modes, or two
+    merged into one. Then modes(replay) = modes(logged) - lost + gained + renumbered.
     """
-    a, b = np.asarray(logged.i, dtype=np.int64), np.asarray(replayed.i, dtype=np.int64)
+    oa, ob = np.argsort(logged.i, kind="stable"), np.argsort(replayed.i, kind="stable")
+    a = np.asarray(logged.i, dtype=np.int64)[oa]
+    b = np.asarray(replayed.i, dtype=np.int64)[ob]
     gaps = np.diff(a if a.size > 1 else b)
     gaps = gaps[gaps > 0]
     tol = max(2.0, 0.4 * float(np.median(gaps))) if gaps.size else 2.0
-    ma, mb = _match(a, b, tol)
-    lost, gained = np.flatnonzero(~ma), np.flatnonzero(~mb)
-    la, lb = np.asarray(logged.mode), np.asarray(replayed.mode)
+    pa, pb = _match(a, b, tol)
+    ma, mb = np.zeros(a.size, bool), np.zeros(b.size, bool)
+    ma[pa], mb[pb] = True, True
+    lost, gained = oa[~ma], ob[~mb]
+    la, lb = np.asarray(logged.mode)[oa], np.asarray(replayed.mode)[ob]
     modes_lost = sorted(set(la.tolist()) - set(la[ma].tolist()) - {-1})
     modes_gained = sorted(set(lb.tolist()) - set(lb[mb].tolist()) - {-1})
+    pl, pr = la[pa], lb[pb]
+    valid = (pl != -1) & (pr != -1)
+    pl, pr = pl[valid], pr[valid]
     return {
         "blips_lost": int(lost.size), "blips_gained": int(gained.size),
         "lost": _listed(logged, lost), "gained": _listed(replayed, gained),
         "modes_lost": _modes_listed(logged, modes_lost), "modes_gained": _modes_listed(replayed, modes_gained),
+        "renumbered": len(set(pr.tolist())) - len(set(pl.tolist())),
+        "modes_split": _many_to_one(pl, pr)[:LISTED], "modes_merged": _many_to_one(pr, pl)[:LISTED],
         "match_tolerance_samples": tol,
     }
 
@@ -295,11 +327,12 @@ def changes(logged_summary: dict | None, logged: Blips, result: dict, replayed: 
     ref = dict(logged_summary or {})
     if not ref and len(logged):
         ref = {"modes": len(set(logged.mode) - {-1}), "crossings": len(logged)}
-    out: dict = {"logged": {k: ref.get(k) for k in ("modes", "crossings", "spacing_steps", "length_um")
+    out: dict = {"logged": {k: ref.get(k) for k in ("modes", "crossings", "spacing_steps", "spacing_nm", "length_um")
                             if k in ref}}
     out.update(compare_blips(logged, replayed))
     if not len(logged):
         out["note"] = "the logged run holds no counted blips to compare with"
     same_numbers = all(result.get(k) == ref.get(k) for k in ("modes", "crossings"))
-    out["identical"] = bool(len(logged)) and same_numbers and out["blips_lost"] == 0 and out["blips_gained"] == 0
+    out["identical"] = (bool(len(logged)) and same_numbers and out["blips_lost"] == out["blips_gained"] == 0
+                        and not out["modes_split"] and not out["modes_merged"])
     return out

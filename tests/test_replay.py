@@ -1,0 +1,149 @@
+"""``modetick replay`` through the CLI: same count as the live run, differences, pacing, bad input."""
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from daq.rig import load_rig
+from daq.runlog import RunLog
+
+ROOT = Path(__file__).resolve().parent.parent
+ENV = {**os.environ, "PYTHONPATH": str(ROOT)}
+
+
+def _cli(*args, timeout=60):
+    return subprocess.run([sys.executable, "-m", "daq", *map(str, args)], cwd=ROOT, env=ENV,
+                          capture_output=True, text=True, timeout=timeout)
+
+
+def _json(res):
+    assert res.returncode == 0, res.stderr
+    return json.loads(res.stdout)
+
+
+@pytest.fixture(scope="module")
+def narrow(tmp_path_factory):
+    """A live two-pass sweep where the blips fade out at both ends of the gain band."""
+    path = tmp_path_factory.mktemp("replay") / "narrow.db"
+    live = _json(_cli("sweep", "--log", path, "--json", "--set", "sweep.settle_s=0",
+                      "--set", 'sim.scenario="narrowgain"'))
+    return path, live
+
+
+def test_fast_replay_reports_the_live_count(narrow):
+    path, live = narrow
+    out = _json(_cli("replay", path, "--fast", "--json"))
+    for key in ("modes", "crossings", "spacing_steps", "spacing_steps_u", "spacing_nm", "length_um",
+                "length_um_u", "samples"):
+        assert out[key] == live[key], key
+    ch = out["changes"]
+    assert ch["identical"] and ch["blips_lost"] == ch["blips_gained"] == 0
+    assert ch["modes_lost"] == ch["modes_gained"] == []
+    # The count itself against the simulator's truth (its detectability rule, sims/truth.py).
+    assert abs(out["modes"] - live["truth"]["modes"]) <= 1
+
+
+def test_other_settings_say_what_changed(narrow):
+    path, live = narrow
+    out = _json(_cli("replay", path, "--fast", "--json", "--no-refine", "--set", "counter.hi_sigma=120"))
+    ch = out["changes"]
+    assert out["settings"] == ["counter.hi_sigma=120"]
+    assert ch["logged"]["modes"] == live["modes"] and not ch["identical"]
+    assert out["modes"] < live["modes"]
+    assert out["modes"] == live["modes"] - len(ch["modes_lost"]) + len(ch["modes_gained"]) + ch["renumbered"]
+    assert ch["blips_lost"] >= len(ch["modes_lost"]) > 0
+    # The blips a stricter trigger drops are the weakest ones the live run logged.
+    log = RunLog.open(path)
+    blips = [e for e in log.events("blip")]
+    lost_i = {b["i"] for b in ch["lost"]}
+    lost_h = [b["height"] for b in blips if b["i"] in lost_i]
+    kept_h = [b["height"] for b in blips if b["i"] not in lost_i]
+    assert len(lost_h) == ch["blips_lost"]
+    assert max(lost_h) < np.median(kept_h)
+    # Where: each lost mode's positions are those of logged blips of that mode.
+    by_mode = {}
+    for b in blips:
+        by_mode.setdefault(b["mode"], []).append(round(b["pos"], 2))
+    for m in ch["modes_lost"]:
+        assert set(m["positions_steps"]) <= set(by_mode[m["mode"]])
+
+
+def test_new_log_holds_the_same_samples_and_blips(narrow, tmp_path):
+    path, live = narrow
+    new = tmp_path / "again.db"
+    out = _json(_cli("replay", path, "--fast", "--json", "--no-refine", "--log", new))
+    a, b = RunLog.open(path), RunLog.open(new)
+    sa, sb = a.read_samples(), b.read_samples()
+    for col in ("position_steps", "direction", "pass_index", "value", "spread"):
+        assert np.array_equal(getattr(sa, col), getattr(sb, col)), col
+    assert np.allclose(sa.t_s, sb.t_s, atol=1e-6)
+    key = lambda e: (e["i"], e["kind"], e["mode"], round(e["pos"], 6))  # noqa: E731
+    assert [key(e) for e in a.events("blip")] == [key(e) for e in b.events("blip")]
+    assert b.meta("status") == "finished" and b.meta("replay_of") == str(path)
+    assert b.summary()["modes"] == out["modes"] == live["modes"]
+    assert _cli("replay", path, "--fast", "--log", new).returncode == 2   # never overwrites
+
+
+def _paced_log(path: Path, duration_s: float, block: int = 500) -> None:
+    """A short log whose samples span duration_s of recorded time."""
+    from sims.trace import simulate_trace
+    rig = load_rig(None, ["sweep.settle_s=0", "sweep.passes=1"])
+    tr = simulate_trace(rig.sections)
+    n = tr.value.size
+    t = np.linspace(0.0, duration_s, n)
+    log = RunLog.create(path, rig)
+    for i in range(0, n, block):   # blocks of recorded samples = pacing points
+        sl = slice(i, i + block)
+        log.append_samples(t[sl], tr.position_steps[sl], tr.direction[sl], tr.pass_index[sl], tr.value[sl])
+    log.finish("finished")
+    log.close()
+
+
+@pytest.mark.parametrize("speed, expected_s", [(2.0, 0.8), (4.0, 0.4), (None, 0.0)])
+def test_speed_paces_the_replay(tmp_path, speed, expected_s):
+    """1.6 s of recorded samples take 1.6 / X s at --speed X (timed here, in process)."""
+    from analysis.counter import StreamCounter
+    from daq.replay import Replay
+    path = tmp_path / "paced.db"
+    _paced_log(path, 1.6)
+    log = RunLog.open(path)
+    rig = log.rig()
+    t0 = time.monotonic()
+    status = Replay(log, rig, StreamCounter(rig["counter"]), speed=speed).run()
+    took = time.monotonic() - t0
+    assert status == "finished"
+    assert expected_s - 0.05 <= took <= expected_s + 0.35, took
+
+
+def test_interrupt_stops_a_paced_replay(tmp_path):
+    path = tmp_path / "paced.db"
+    _paced_log(path, 20.0, block=100)      # a block every 0.25 s of recorded time
+    p = subprocess.Popen([sys.executable, "-m", "daq", "replay", str(path), "--json", "--no-refine"],
+                         cwd=ROOT, env=ENV, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    time.sleep(3.0)
+    p.send_signal(signal.SIGINT)
+    out, err = p.communicate(timeout=20)
+    assert p.returncode == 130, err
+    res = json.loads(out)
+    assert res["status"] == "stopped" and 0 < res["samples_replayed"] < res["samples"]
+
+
+@pytest.mark.parametrize("args, words", [
+    (["--fast"], "not a modetick run log"),
+    (["--fast", "--set", "counter.hi_sigmaa=3"], "hi_sigma"),
+])
+def test_bad_input_exits_2_with_one_line(tmp_path, narrow, args, words):
+    target = narrow[0]
+    if words == "not a modetick run log":
+        target = tmp_path / "junk.db"
+        target.write_text("position,intensity\n1,2\n")
+    res = _cli("replay", target, *args)
+    assert res.returncode == 2
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and words in lines[0] and "Traceback" not in res.stderr
