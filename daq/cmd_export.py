@@ -17,7 +17,7 @@ def run(args) -> int:
     from daq.export import export_csv
     if args.format.lower() not in FORMATS:
         return fail(f"export: unknown format {args.format!r}; supported: {', '.join(FORMATS)}", 2)
-    analyzed, code = open_or_fail(args)
+    analyzed, code = open_or_fail(args, with_crossings=False)
     if analyzed is None:
         return code
     out = out_dir(args, "export")

@@ -30,11 +30,11 @@ def out_dir(args, suffix: str) -> Path:
     return p.with_name(f"{p.stem}-{suffix}")
 
 
-def open_or_fail(args):
+def open_or_fail(args, with_crossings: bool = True):
     """(AnalyzedLog, None), or (None, exit code) after one line on stderr."""
     from daq.report import open_analyzed
     try:
-        return open_analyzed(args.log, args.config, args.set), None
+        return open_analyzed(args.log, args.config, args.set, with_crossings), None
     except (RigError, LogError) as exc:
         return None, fail(exc, 2)
 

@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from matplotlib.ticker import MaxNLocator
 
 from daq.runlog import LogError, RunLog, Samples
 
@@ -22,7 +23,8 @@ DPI = 110
 WIDTH_IN = 13.0
 TRACE_PX = int(WIDTH_IN * DPI)      # pixel columns of the trace: the downsampling target
 LABEL_PX = 34                       # least distance between two mode labels on the trace
-PASSES_PER_PAGE = 4                 # trace panels per figure
+MAX_TRACE_PASSES = 4                # trace panels in one figure
+PASS_ROWS_EACH_END = 20             # report.md lists this many passes at each end of a long night
 TRACE_COLOUR = "#1f4e79"
 BLIP_COLOUR = "#d1495b"
 UP_COLOUR, DOWN_COLOUR = "#1f77b4", "#e07b00"
@@ -41,7 +43,8 @@ SAFETY_TEXT = (
 
 @dataclass
 class AnalyzedLog:
-    """One run log with its samples, events, rig and the ``analyze --json`` result."""
+    """One run log with its samples, events, rig, the ``analyze --json`` result and
+    the counter's table of crossings (one row per blip seen, all passes)."""
 
     log: RunLog
     rig: Any                       # daq.rig.Rig
@@ -49,7 +52,7 @@ class AnalyzedLog:
     samples: Samples
     events: list[dict]
     result: dict
-    notes: list[str] = field(default_factory=list)
+    crossings: dict[str, np.ndarray] = field(default_factory=dict)
 
     @property
     def sections(self) -> dict:
@@ -59,12 +62,16 @@ class AnalyzedLog:
         return self.rig.calibrated() and self.result.get("spacing_nm") is not None
 
 
-def open_analyzed(path: str, config: str | None = None, overrides: list[str] | None = None) -> AnalyzedLog:
+def open_analyzed(path: str, config: str | None = None, overrides: list[str] | None = None,
+                  with_crossings: bool = True) -> AnalyzedLog:
     """Open a run log and analyse it as ``modetick analyze --json`` does.
+
+    ``with_crossings`` also keeps the counter's table of single crossings (the
+    trace figures need it; the export does not).
 
     Raises LogError or RigError with a one-line message for bad input.
     """
-    from analysis.pipeline import analyze_trace
+    from analysis.pipeline import analyze_trace, count
     from daq.cmd_analyze import _log_rig
     from daq.rig import load_rig
     from daq.summary import _clean
@@ -75,15 +82,18 @@ def open_analyzed(path: str, config: str | None = None, overrides: list[str] | N
         s = log.read_samples()
         if len(s) == 0:
             raise LogError(f"log {path}: holds no samples")
-        sections = rig.sections
+        settings = rig.sections.get("counter")
         result = analyze_trace(s.position_steps, s.value, direction=s.direction,
-                               pass_index=s.pass_index, sections=sections,
-                               counter_settings=sections.get("counter"))
+                               pass_index=s.pass_index, sections=rig.sections, counter_settings=settings)
         result = _clean(dict(result))
         result["samples"] = int(len(s))
         result["status"] = log.meta("status")
         result["log"] = str(log.path)
-        return AnalyzedLog(log, rig, config or "the log", s, log.events(), result)
+        # The result holds per-mode means only; the trace marks every single
+        # crossing, so the same counter runs once more for its crossing table.
+        pos, val = s.position_steps.astype(np.float64), s.value.astype(np.float64)
+        crossings = count(pos, val, s.direction, settings).crossing_table() if with_crossings else {}
+        return AnalyzedLog(log, rig, config or "the log", s, log.events(), result, crossings)
     except BaseException:
         log.close()
         raise
@@ -99,6 +109,7 @@ class PassBlips:
     direction: int
     position_steps: np.ndarray     # blip centres, steps (commanded frame)
     mode: np.ndarray               # mode numbers (int)
+    peak: np.ndarray | None = None  # the reading at each blip's peak sample
 
 
 def pass_directions(s: Samples) -> dict[int, int]:
@@ -111,40 +122,34 @@ def pass_directions(s: Samples) -> dict[int, int]:
 
 
 def blips_per_pass(a: AnalyzedLog) -> list[PassBlips]:
-    """The blips each pass saw, numbered by mode, from the logged blip events."""
+    """Every crossing the counter made, grouped by the pass it happened in."""
     dirs = pass_directions(a.samples)
-    rows: dict[int, list[tuple[float, int]]] = {p: [] for p in dirs}
-    n = len(a.samples)
-    for e in a.events:
-        if e["kind"] != "blip" or e["pos"] is None or e["mode"] is None:
-            continue
-        i = min(max(int(e["i"] or 0), 0), n - 1)
-        p = int(a.samples.pass_index[i])
-        rows.setdefault(p, []).append((float(e["pos"]), int(e["mode"])))
-    out = []
-    for p in sorted(rows):
-        pos = np.array([r[0] for r in rows[p]], dtype=float)
-        mode = np.array([r[1] for r in rows[p]], dtype=int)
-        out.append(PassBlips(p, dirs.get(p, 1), pos, mode))
-    return out
+    ct = a.crossings
+    idx = np.clip(np.asarray(ct.get("index", []), dtype=np.int64), 0, max(len(a.samples) - 1, 0))
+    p_of = a.samples.pass_index[idx]
+    pos = np.asarray(ct.get("position_steps", []), dtype=float)
+    mode = np.asarray(ct.get("mode", []), dtype=np.int64)
+    return [PassBlips(p, dirs[p], pos[p_of == p], mode[p_of == p], a.samples.value[idx[p_of == p]])
+            for p in sorted(dirs)]
 
 
 def reversal_positions(a: AnalyzedLog) -> list[float]:
-    """Turning points of the sweep: logged reversal events, else the ends of each pass."""
-    rev = [float(e["pos"]) for e in a.events if e["kind"] == "reversal" and e["pos"] is not None]
-    if rev:
-        return rev
+    """Where the sweep turned: the last commanded position before each change of direction."""
     s = a.samples
-    out = []
-    change = np.flatnonzero(np.diff(s.pass_index) != 0)
-    for i in change.tolist():
-        if s.direction[i] != s.direction[i + 1]:
-            out.append(float(s.position_steps[i]))
-    return out
+    turn = np.flatnonzero(np.diff(s.direction) != 0)
+    return [float(s.position_steps[i]) for i in turn.tolist()]
+
+
+def mode_columns(result: dict) -> dict[str, np.ndarray]:
+    """The mode map as float columns (None -> NaN): mode, centre, centre_up, centre_down."""
+    rows = result.get("mode_map") or []
+    col = lambda k: np.array([np.nan if r.get(k) is None else r[k] for r in rows], dtype=float)  # noqa: E731
+    return {"mode": col("mode"), "centre": col("centre_steps"), "up": col("centre_up_steps"),
+            "down": col("centre_down_steps")}
 
 
 def nm_per_step(result: dict) -> float | None:
-    """Local conversion steps -> nm near the sweep centre (from the analysis's own numbers)."""
+    """Local conversion steps -> nm at the sweep centre (the analysis's own two numbers)."""
     sp, nm = result.get("spacing_steps"), result.get("spacing_nm")
     if sp and nm:
         return abs(nm / sp)
@@ -203,160 +208,197 @@ def minmax_envelope(x: np.ndarray, y: np.ndarray, n_cols: int) -> tuple[np.ndarr
     return np.repeat(xc, 2), np.column_stack([lo, hi]).ravel()
 
 
-def _peak_near(x: np.ndarray, y: np.ndarray, at: np.ndarray, half_width: float) -> np.ndarray:
-    """Highest reading within +-half_width of each position (x sorted)."""
-    out = np.empty(at.size)
-    for k, p in enumerate(at.tolist()):
-        i0, i1 = np.searchsorted(x, [p - half_width, p + half_width])
-        seg = y[i0:max(i1, i0 + 1)]
-        out[k] = np.nanmax(seg) if seg.size else np.nan
-    return out
-
-
 def _littrow_axis(ax, sections: dict) -> None:
-    """A top x axis in Littrow wavelength (nm), from the rig's calibration.
-
-    Grating equation in Littrow, m*lambda = 2*d*sin(theta) (Palmer, Diffraction
-    Grating Handbook), with theta = angle_at_zero_deg + deg_per_step * steps.
-    """
+    """A top x axis in Littrow wavelength (nm) from the rig calibration (analysis.physics)."""
+    from analysis import physics
     st, gr = sections["stage"], sections["grating"]
-    d_nm = 1e6 / gr["lines_per_mm"]
-    m = gr["order"] or 1
+    lpm, m = gr["lines_per_mm"], gr["order"] or 1
     a0, dps = st["angle_at_zero_deg"], st["deg_per_step"]
 
-    def to_nm(steps):
-        return 2 * d_nm * np.sin(np.radians(a0 + dps * np.asarray(steps, float))) / m
+    def angle_of(nm):
+        try:
+            return physics.littrow_angle_deg(nm, lpm, m)
+        except ValueError:
+            return math.nan
 
-    def to_steps(nm):
-        s = np.clip(np.asarray(nm, float) * m / (2 * d_nm), -1, 1)
-        return (np.degrees(np.arcsin(s)) - a0) / dps
-
+    to_nm = np.vectorize(lambda x: physics.littrow_wavelength_nm(physics.angle_deg(x, dps, a0), lpm, m),
+                         otypes=[float])
+    to_steps = np.vectorize(lambda nm: (angle_of(nm) - a0) / dps, otypes=[float])
     top = ax.secondary_xaxis("top", functions=(to_nm, to_steps))
     top.set_xlabel("Littrow wavelength from the rig calibration (nm)")
 
 
-def _chunks(items: list, n: int) -> list[list]:
-    return [items[i:i + n] for i in range(0, len(items), n)] or [[]]
+def trace_passes(passes: list[PassBlips]) -> list[PassBlips]:
+    """The passes the trace figure draws: all of up to MAX_TRACE_PASSES, else the first
+    two and the last two (a night of many passes would fill pages)."""
+    if len(passes) <= MAX_TRACE_PASSES:
+        return passes
+    return passes[:2] + passes[-2:]
 
 
-def fig_trace(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> list[Path]:
+def _draw_pass(ax, s: Samples, pb: PassBlips, lo: float, hi: float, n_passes: int) -> None:
+    """One pass's trace between positions lo and hi, its blips marked and numbered."""
+    m = (s.pass_index == pb.pass_index) & (s.position_steps >= lo) & (s.position_steps <= hi)
+    order = np.argsort(s.position_steps[m], kind="stable")
+    x, y = s.position_steps[m][order].astype(float), s.value[m][order]
+    xd, yd = minmax_envelope(x, y, TRACE_PX)
+    ax.plot(xd, yd, color=TRACE_COLOUR, lw=0.6)
+    inside = (pb.position_steps >= lo) & (pb.position_steps <= hi)
+    bx, bm = pb.position_steps[inside], pb.mode[inside]
+    by = pb.peak[inside] if pb.peak is not None else np.full(bm.size, np.nan)
+    # Markers shrink where blips crowd, so they do not merge into a bar over the trace.
+    px_per_blip = TRACE_PX / max(bm.size, 1) * (np.ptp(bx) if bm.size > 1 else hi - lo) / max(hi - lo, 1)
+    ax.plot(bx, by, "v", ms=float(np.clip(px_per_blip / 3, 1.5, 5)), color=BLIP_COLOUR, ls="none")
+    k = label_stride(bm.size, TRACE_PX * (np.ptp(bx) if bm.size > 1 else 1) / max(hi - lo, 1))
+    for p, yv, mode in zip(bx.tolist(), by.tolist(), bm.tolist()):
+        if mode % k == 0 and math.isfinite(yv):
+            ax.annotate(str(mode), (p, yv), xytext=(0, 5), textcoords="offset points",
+                        ha="center", va="bottom", fontsize=7.5, color=BLIP_COLOUR)
+    if y.size:
+        y_lo, y_hi = float(np.nanmin(y)), float(np.nanmax(y))
+        ax.set_ylim(y_lo - 0.04 * (y_hi - y_lo), y_hi + 0.16 * ((y_hi - y_lo) or 1.0))
+    arrow = "up, steps increasing \u2192" if pb.direction > 0 else "down, steps decreasing \u2190"
+    ax.set_title(f"pass {pb.pass_index + 1} of {n_passes}: {arrow};  {bm.size} blips (\u25bc), "
+                 + ("mode number on each" if k == 1 else f"mode number on every {k}th"),
+                 loc="left", fontsize=10)
+    ax.set_ylabel("detector reading\n(instrument units)")
+    ax.grid(alpha=0.25)
+
+
+def fig_trace(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> Path:
     """Figure 1: the trace of each pass, every blip marked, mode numbers, reversals."""
     s = a.samples
+    shown = trace_passes(passes) or [PassBlips(0, 1, np.zeros(0), np.zeros(0, int))]
     reversals = reversal_positions(a)
-    x_all = s.position_steps
-    x_lo, x_hi = float(np.min(x_all)), float(np.max(x_all))
+    x_lo, x_hi = float(np.min(s.position_steps)), float(np.max(s.position_steps))
     pad = 0.01 * max(x_hi - x_lo, 1.0)
-    paths = []
-    for page_no, page in enumerate(_chunks(passes, PASSES_PER_PAGE)):
-        fig = _figure(WIDTH_IN, 1.3 + 2.6 * max(len(page), 1))
-        axes = fig.subplots(max(len(page), 1), 1, sharex=True, squeeze=False)[:, 0]
-        for ax, pb in zip(axes, page):
-            m = s.pass_index == pb.pass_index
-            order = np.argsort(s.position_steps[m], kind="stable")
-            x, y = s.position_steps[m][order].astype(float), s.value[m][order]
-            xd, yd = minmax_envelope(x, y, TRACE_PX)
-            ax.plot(xd, yd, color=TRACE_COLOUR, lw=0.7)
-            spacing = abs(a.result.get("spacing_steps") or 0) or (x_hi - x_lo) / max(len(pb.mode), 1)
-            y_pk = _peak_near(x, y, pb.position_steps, 0.25 * spacing)
-            ax.plot(pb.position_steps, y_pk, "v", ms=4, color=BLIP_COLOUR, ls="none")
-            span_px = TRACE_PX * (np.ptp(pb.position_steps) if pb.mode.size > 1 else 1) / max(x_hi - x_lo, 1)
-            k = label_stride(pb.mode.size, span_px)
-            for p, yv, mode in zip(pb.position_steps.tolist(), y_pk.tolist(), pb.mode.tolist()):
-                if mode % k == 0 and math.isfinite(yv):
-                    ax.annotate(str(mode), (p, yv), xytext=(0, 6), textcoords="offset points",
-                                ha="center", va="bottom", fontsize=7, color=BLIP_COLOUR)
-            y_lo, y_hi = float(np.nanmin(y)), float(np.nanmax(y))
-            ax.set_ylim(y_lo - 0.04 * (y_hi - y_lo), y_hi + 0.16 * (y_hi - y_lo or 1))
-            for r in reversals:
-                ax.axvline(r, color="0.45", ls="--", lw=1)
-            arrow = "up, steps increasing \u2192" if pb.direction > 0 else "down, steps decreasing \u2190"
-            ax.set_title(f"pass {pb.pass_index + 1}: {arrow};  {pb.mode.size} blips (\u25bc), "
-                         + ("mode number on each" if k == 1 else f"mode number on every {k}th"),
-                         loc="left", fontsize=10)
-            ax.set_ylabel("detector reading\n(instrument units)")
-            ax.grid(alpha=0.25)
+    fig = _figure(WIDTH_IN, 1.3 + 2.6 * len(shown))
+    axes = fig.subplots(len(shown), 1, sharex=True, squeeze=False)[:, 0]
+    for ax, pb in zip(axes, shown):
+        _draw_pass(ax, s, pb, x_lo, x_hi, len(passes))
         for r in reversals:
-            axes[0].annotate("reversal", (r, 0.5), xycoords=("data", "axes fraction"), rotation=90,
-                             xytext=(-3, 0), textcoords="offset points", ha="right", va="center",
-                             fontsize=8, color="0.35")
-        axes[-1].set_xlabel("grating actuator position (steps)")
-        axes[-1].set_xlim(x_lo - pad, x_hi + pad)
-        if a.calibrated():
-            _littrow_axis(axes[0], a.sections)
-        name = "trace.png" if page_no == 0 else f"trace-{page_no + 1}.png"
-        paths.append(_save(fig, out_dir / name))
-    return paths
+            ax.axvline(r, color="0.45", ls="--", lw=1)
+    for r in sorted(set(reversals))[-1:]:
+        axes[0].annotate("reversal", (r, 0.98), xycoords=("data", "axes fraction"), xytext=(-4, 0),
+                         textcoords="offset points", ha="right", va="top", fontsize=8, color="0.3",
+                         bbox=dict(boxstyle="round,pad=0.2", fc="white", ec="0.6", lw=0.6))
+    axes[-1].set_xlabel("grating actuator position (steps)")
+    axes[-1].set_xlim(x_lo - pad, x_hi + pad)
+    if a.calibrated():
+        _littrow_axis(axes[0], a.sections)
+    return _save(fig, out_dir / "trace.png")
 
 
-def _fit_lines(passes: list[PassBlips], slope: float | None):
-    """Per direction: (mode, centre, line) with one common slope (steps per mode).
-
-    With the analysis's slope the intercept per direction is the least-squares
-    one for that slope (mean of centre - slope*mode); without it the common
-    slope is fitted here.
-    """
-    by_dir: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-    for pb in passes:
-        mm, cc = by_dir.get(pb.direction, (np.zeros(0, int), np.zeros(0)))
-        by_dir[pb.direction] = (np.append(mm, pb.mode), np.append(cc, pb.position_steps))
-    by_dir = {d: v for d, v in by_dir.items() if v[0].size}
-    if slope is None:
-        # Common slope across directions: centre each direction, then one regression.
-        dm = np.concatenate([m - m.mean() for m, _ in by_dir.values()])
-        dc = np.concatenate([c - c.mean() for _, c in by_dir.values()])
-        slope = float(dm @ dc / (dm @ dm)) if dm @ dm > 0 else 0.0
-    else:
-        # The analysis reports a magnitude; the sign is the sweep's own.
-        dm = np.concatenate([m - m.mean() for m, _ in by_dir.values()])
-        dc = np.concatenate([c - c.mean() for _, c in by_dir.values()])
-        slope = math.copysign(abs(slope), float(dm @ dc) if dm.size else 1.0)
-    out = {}
-    for d, (m, c) in by_dir.items():
-        b = float(np.mean(c - slope * m))
-        out[d] = (m, c, slope * m + b)
-    return slope, out
-
-
-def fig_fit(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> Path | None:
-    """Figure 2: blip centre against mode number, the fit, and its residuals."""
-    if sum(pb.mode.size for pb in passes) < 2:
+def zoom_window(passes: list[PassBlips], spacing_steps: float | None, modes_each_side: int = 6):
+    """(lo, hi) steps around the middle counted mode, or None when there is nothing to zoom."""
+    pos = np.concatenate([pb.position_steps for pb in passes]) if passes else np.zeros(0)
+    if pos.size < 3 or not spacing_steps:
         return None
-    slope, lines = _fit_lines(passes, a.result.get("spacing_steps"))
+    mid = float(np.median(pos))
+    half = (modes_each_side + 0.5) * abs(spacing_steps)
+    return mid - half, mid + half
+
+
+def fig_trace_zoom(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> Path | None:
+    """Figure 1b: a dozen modes at full resolution, first up and first down pass one above
+    the other on one position axis, so each blip, its number and the backlash shift show."""
+    win = zoom_window(passes, a.result.get("spacing_steps"))
+    if win is None:
+        return None
+    ups = [pb for pb in passes if pb.direction > 0][:1]
+    downs = [pb for pb in passes if pb.direction < 0][:1]
+    shown = ups + downs
+    fig = _figure(WIDTH_IN, 1.3 + 2.4 * len(shown))
+    axes = fig.subplots(len(shown), 1, sharex=True, squeeze=False)[:, 0]
+    for ax, pb in zip(axes, shown):
+        _draw_pass(ax, a.samples, pb, win[0], win[1], len(passes))
+    axes[-1].set_xlabel("grating actuator position (steps)")
+    axes[-1].set_xlim(*win)
+    fig.suptitle("detail: the middle of the counted range at full resolution "
+                 "(\u25bc at the counter's blip centre, drawn at the blip's peak reading)",
+                 x=0.01, ha="left", fontsize=11)
+    return _save(fig, out_dir / "trace-detail.png")
+
+
+def fit_curve(result: dict, modes: np.ndarray) -> np.ndarray | None:
+    """The analysis's centre-against-mode polynomial evaluated at the given modes."""
+    fit = result.get("fit") or {}
+    if not fit.get("coef"):
+        return None
+    return np.polyval(np.asarray(fit["coef"], float), modes - float(fit["k_centre"]))
+
+
+def fit_residuals(result: dict):
+    """(mode, centre, residual, left out) of the analysis's fit, or None without a fit.
+
+    The analysis reports how many centres it left out, not which: they are the ones
+    farthest from its final curve (it drops those beyond 5 MAD of the residuals).
+    """
+    mc = mode_columns(result)
+    ok = np.isfinite(mc["centre"])
+    k, c = mc["mode"][ok], mc["centre"][ok]
+    curve = fit_curve(result, k)
+    if curve is None or k.size < 2:
+        return None
+    res = c - curve
+    out = np.zeros(k.size, bool)
+    n_out = int(result["fit"].get("outliers") or 0)
+    if n_out:
+        out[np.argsort(-np.abs(res))[:n_out]] = True
+    return k, c, res, out
+
+
+def fig_fit(a: AnalyzedLog, out_dir: Path) -> Path | None:
+    """Figure 2: blip centre against mode number, the analysis's fit, and its residuals."""
+    fr = fit_residuals(a.result)
+    if fr is None:
+        return None
+    k, c, res, out = fr
+    n_out = int(out.sum())
+    r, fit = a.result, a.result["fit"]
     fig = _figure(WIDTH_IN * 0.75, 7.0)
-    top, bot = fig.subplots(2, 1, sharex=True, height_ratios=[2.2, 1])
-    for d, (m, c, line) in sorted(lines.items(), reverse=True):
-        colour, word = (UP_COLOUR, "up") if d > 0 else (DOWN_COLOUR, "down")
-        order = np.argsort(m)
-        top.plot(m, c, "o" if d > 0 else "s", ms=3.5, color=colour, ls="none",
-                 label=f"blip centres, {word} passes ({m.size})")
-        top.plot(m[order], line[order], "-", color=colour, lw=1, alpha=0.8)
-        bot.plot(m, c - line, "o" if d > 0 else "s", ms=3.5, color=colour, ls="none")
-    r = a.result
-    text = f"fit: spacing = {_pm(r.get('spacing_steps'), r.get('spacing_steps_u'))} steps per mode"
+    top, bot = fig.subplots(2, 1, sharex=True, height_ratios=[1.4, 1])
+    top.plot(k, c, "o", ms=3.5, color=UP_COLOUR, ls="none", label=f"blip centre ({k.size} modes)")
+    kk = np.linspace(k.min(), k.max(), 400)
+    shape = {1: "straight line", 2: "quadratic"}.get(fit.get("degree"), f"degree {fit.get('degree')}")
+    text = (f"{shape} fit; spacing = slope at mode {fit['k_centre']:g}:\n"
+            f"{_pm(r.get('spacing_steps'), r.get('spacing_steps_u'))} steps per mode")
     if r.get("spacing_nm") is not None:
-        text += f"\n        = {_pm(r.get('spacing_nm'), r.get('spacing_nm_u'))} nm per mode"
-    top.plot([], [], "-", color="0.3", label=text)
-    top.legend(loc="best", fontsize=9, framealpha=0.9)
+        text += f" = {_pm(r.get('spacing_nm'), r.get('spacing_nm_u'))} nm"
+    top.plot(kk, fit_curve(r, kk), "-", color=BLIP_COLOUR, lw=1.2, label=text)
+    top.legend(loc="upper left", fontsize=9, framealpha=0.9)
     top.set_ylabel("blip centre (steps)")
-    top.set_title("blip centre against mode number", loc="left", fontsize=11)
+    top.set_title("blip centre against mode number (mean of up and down passes, backlash split evenly)",
+                  loc="left", fontsize=10.5)
     top.grid(alpha=0.25)
-    res = np.concatenate([c - line for _, c, line in lines.values()])
-    rms = float(np.sqrt(np.mean(res ** 2))) if res.size else float("nan")
+    kept = res[~out]
+    bot.plot(k[~out], kept, "o", ms=3.5, color=UP_COLOUR, ls="none", label="used in the fit")
+    if n_out:
+        bot.plot(k[out], res[out], "o", ms=5, mfc="none", color=BLIP_COLOUR, ls="none",
+                 label=f"left out of the fit ({n_out})")
+        bot.legend(fontsize=8, framealpha=0.9, loc="best")
     bot.axhline(0, color="0.3", lw=0.8)
     bot.set_ylabel("residual (steps)")
     bot.set_xlabel("mode number")
-    bot.set_title(f"residuals from the fit (rms {rms:.3g} steps)", loc="left", fontsize=10)
+    bot.set_title(f"residuals from the fit (rms {float(np.sqrt(np.mean(kept ** 2))):.3g} steps over the modes used)",
+                  loc="left", fontsize=10)
     bot.grid(alpha=0.25)
-    k = nm_per_step(r)
-    if k:
-        ax2 = bot.secondary_yaxis("right", functions=(lambda v: v * k * 1e3, lambda v: v / (k * 1e3)))
+    f = nm_per_step(r)
+    if f:
+        ax2 = bot.secondary_yaxis("right", functions=(lambda v: v * f * 1e3, lambda v: v / (f * 1e3)))
         ax2.set_ylabel("residual (pm)")
     return _save(fig, out_dir / "fit.png")
 
 
 def centre_differences(passes: list[PassBlips]) -> np.ndarray:
-    """Distances between neighbouring blip centres within each pass (steps)."""
-    parts = [np.diff(np.sort(pb.position_steps)) for pb in passes if pb.position_steps.size > 1]
+    """Distances between blips of neighbouring mode numbers within each pass (steps).
+
+    A missed mode shows up as a distance of about two spacings."""
+    parts = []
+    for pb in passes:
+        if pb.mode.size > 1:
+            order = np.argsort(pb.mode, kind="stable")
+            parts.append(np.abs(np.diff(pb.position_steps[order])))
     return np.concatenate(parts) if parts else np.zeros(0)
 
 
@@ -378,132 +420,135 @@ def fig_spacings(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> Path
         return None
     fig = _figure(WIDTH_IN * 0.65, 4.6)
     ax = fig.subplots()
-    edges = spacing_bins(d)
-    ax.hist(d, bins=edges, color="#5b8db8", edgecolor="white", linewidth=0.5,
-            label=f"{d.size} neighbour distances")
+    ax.hist(d, bins=spacing_bins(d), color="#5b8db8", edgecolor="white", linewidth=0.5,
+            label=f"{d.size} neighbour pairs")
     sp = a.result.get("spacing_steps")
     if sp:
         ax.axvline(abs(sp), color=BLIP_COLOUR, lw=1.5,
                    label=f"fitted spacing {_pm(abs(sp), a.result.get('spacing_steps_u'))} steps")
-    ax.axvline(float(np.median(d)), color="0.3", ls=":", lw=1.2, label=f"median {np.median(d):.4g} steps")
-    ax.set_xlabel("distance between neighbouring blip centres (steps)")
-    ax.set_ylabel("count")
-    ax.set_title("spread of the mode spacing (within each pass)", loc="left", fontsize=11)
-    ax.legend(fontsize=9, framealpha=0.9)
+    med = float(np.median(d))
+    ax.axvline(med, color="0.2", ls=":", lw=1.4, label=f"median {med:.4g} steps")
+    ax.set_xlabel("distance between the centres of neighbouring modes, within one pass (steps)")
+    ax.set_ylabel("number of neighbour pairs")
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.set_title(f"spread of the mode spacing: standard deviation {np.std(d, ddof=1):.3g} steps",
+                 loc="left", fontsize=11)
+    # Below the axes: inside, it would hide the bars it explains.
+    fig.legend(loc="outside lower center", ncols=3, fontsize=9, frameon=False)
     ax.grid(alpha=0.25)
-    k = nm_per_step(a.result)
-    if k:
-        top = ax.secondary_xaxis("top", functions=(lambda v: v * k, lambda v: v / k))
+    f = nm_per_step(a.result)
+    if f:
+        top = ax.secondary_xaxis("top", functions=(lambda v: v * f, lambda v: v / f))
         top.set_xlabel("distance (nm)")
     return _save(fig, out_dir / "spacings.png")
 
 
-def backlash_offsets(passes: list[PassBlips]) -> tuple[np.ndarray, np.ndarray]:
-    """(mode, mean up centre - mean down centre) for modes seen in both directions."""
-    up: dict[int, list[float]] = {}
-    down: dict[int, list[float]] = {}
-    for pb in passes:
-        dst = up if pb.direction > 0 else down
-        for m, c in zip(pb.mode.tolist(), pb.position_steps.tolist()):
-            dst.setdefault(m, []).append(c)
-    both = sorted(set(up) & set(down))
-    return (np.array(both, dtype=int),
-            np.array([np.mean(up[m]) - np.mean(down[m]) for m in both], dtype=float))
+def backlash_offsets(result: dict) -> tuple[np.ndarray, np.ndarray]:
+    """(mode, up centre - down centre) for the modes the map has in both directions."""
+    mc = mode_columns(result)
+    both = np.isfinite(mc["up"]) & np.isfinite(mc["down"])
+    return mc["mode"][both].astype(int), (mc["up"] - mc["down"])[both]
 
 
-def fig_backlash(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> Path | None:
+def fig_backlash(a: AnalyzedLog, out_dir: Path) -> Path | None:
     """Figure 4: per-mode offset of up against down passes (backlash)."""
-    modes, off = backlash_offsets(passes)
+    modes, off = backlash_offsets(a.result)
     if modes.size == 0:
         return None
     fig = _figure(WIDTH_IN * 0.75, 4.6)
     ax = fig.subplots()
-    ax.plot(modes, off, "o", ms=3.5, color="#6a4c93", label=f"{modes.size} modes seen both ways")
-    mean = float(np.mean(off))
-    ax.axhline(mean, color="0.3", ls=":", lw=1.2, label=f"mean offset {mean:.4g} steps")
+    ax.plot(modes, off, "o", ms=3.5, color="#6a4c93", ls="none",
+            label=f"{modes.size} modes seen in both directions")
     bl = a.result.get("backlash_steps")
     if bl is not None:
-        ax.axhline(math.copysign(abs(bl), mean), color=BLIP_COLOUR, lw=1.5,
-                   label=f"backlash from the analysis {_pm(bl, a.result.get('backlash_steps_u'))} steps")
+        ax.axhline(bl, color=BLIP_COLOUR, lw=1.5, label=f"backlash (median offset) {bl:.3g} steps")
     ax.set_xlabel("mode number")
-    ax.set_ylabel("centre on up pass \u2212 centre on down pass (steps)")
-    ax.set_title("up against down passes: backlash per mode", loc="left", fontsize=11)
+    ax.set_ylabel("centre up \u2212 centre down (steps)")
+    ax.set_title("up against down passes: where each mode was seen going up and going down",
+                 loc="left", fontsize=11)
     ax.legend(fontsize=9, framealpha=0.9)
     ax.grid(alpha=0.25)
     return _save(fig, out_dir / "backlash.png")
 
 
+def fig_passes(a: AnalyzedLog, out_dir: Path) -> Path | None:
+    """Figure 6 (three passes or more): blips and spacing pass by pass, to spot a bad pass."""
+    rows = a.result.get("per_pass") or []
+    if len(rows) < 3:
+        return None
+    p = np.array([r["pass"] + 1 for r in rows])
+    up = np.array([r["direction"] > 0 for r in rows])
+    fig = _figure(WIDTH_IN * 0.75, 6.0)
+    top, bot = fig.subplots(2, 1, sharex=True)
+    n = np.array([r["crossings"] for r in rows])
+    # Dots, not bars from zero: a pass that lost one mode of 160 must stand out.
+    top.plot(p[up], n[up], "o", ms=6, color=UP_COLOUR, ls="none", label="up pass")
+    top.plot(p[~up], n[~up], "s", ms=6, color=DOWN_COLOUR, ls="none", label="down pass")
+    if a.result.get("modes"):
+        top.axhline(a.result["modes"], color="0.3", ls=":", lw=1.2, label=f"modes counted, all passes ({a.result['modes']})")
+    lo, hi = min(n.min(), a.result.get("modes") or n.min()), max(n.max(), a.result.get("modes") or n.max())
+    top.set_ylim(lo - 1.5 - 0.1 * (hi - lo), hi + 1.5 + 0.1 * (hi - lo))
+    top.yaxis.set_major_locator(MaxNLocator(integer=True))
+    top.set_ylabel("blips seen in the pass")
+    top.set_title("pass by pass: blips seen and spacing", loc="left", fontsize=11)
+    top.grid(alpha=0.25)
+    sp = np.array([np.nan if r.get("spacing_steps") is None else r["spacing_steps"] for r in rows])
+    su = np.array([0.0 if r.get("spacing_steps_u") is None else r["spacing_steps_u"] for r in rows])
+    for sel, colour in ((up, UP_COLOUR), (~up, DOWN_COLOUR)):
+        bot.errorbar(p[sel], sp[sel], yerr=su[sel], fmt="o" if colour == UP_COLOUR else "s", ms=5,
+                     color=colour, capsize=2)
+    if a.result.get("spacing_steps"):
+        bot.axhline(a.result["spacing_steps"], color=BLIP_COLOUR, lw=1.2, label="spacing, all passes together")
+    bot.set_ylabel("spacing in the pass (steps)")
+    bot.set_xlabel("pass")
+    bot.xaxis.set_major_locator(MaxNLocator(integer=True))
+    bot.grid(alpha=0.25)
+    fig.legend(loc="outside lower center", ncols=4, fontsize=9, frameon=False)
+    return _save(fig, out_dir / "passes.png")
+
+
 def _pm(v: Any, u: Any) -> str:
-    """'46.21 \u00b1 0.12' with the value rounded to the uncertainty's second digit."""
+    """'46.21 \u00b1 0.12': u to two significant digits, the value to match."""
     if v is None:
         return "n/a"
-    if u is None or not math.isfinite(u) or u <= 0:
-        return f"{v:.6g}"
-    digits = max(0, 1 - int(math.floor(math.log10(u))))
-    return f"{v:.{digits}f} \u00b1 {u:.{digits}f}"
+    text, unc = _vu(v, u, "")
+    return f"{text.strip()} \u00b1 {unc.strip()}" if unc else text.strip()
 
 
 # --- the uncertainty budget ---------------------------------------------------
 
-def budget_rows(budget: Any) -> list[tuple[str, float, dict]]:
-    """(input name, contribution, the raw row) from the analysis budget, largest first.
-
-    The contribution is the row's first numeric column whose name says it is one
-    (``contribution``...), else its first numeric column.
-    """
-    rows = []
-    for row in budget or []:
-        if not isinstance(row, dict):
-            continue
-        name = next((str(v) for k, v in row.items() if isinstance(v, str)), "?")
-        nums = [(k, v) for k, v in row.items() if isinstance(v, (int, float)) and not isinstance(v, bool)]
-        pick = next(((k, v) for k, v in nums if "contrib" in k), nums[0] if nums else None)
-        if pick is not None and pick[1] is not None:
-            rows.append((name, float(pick[1]), row))
-    return sorted(rows, key=lambda r: -abs(r[1]))
-
-
-def budget_value_key(budget: Any) -> str | None:
-    for row in budget or []:
-        for k, v in row.items():
-            if "contrib" in k and isinstance(v, (int, float)):
-                return k
-    return None
-
-
 def fig_budget(a: AnalyzedLog, out_dir: Path) -> Path | None:
-    """Figure 5: the uncertainty budget as horizontal bars, largest contribution on top."""
-    rows = budget_rows(a.result.get("budget"))
+    """Figure 5: the uncertainty budget of the chip length, largest contribution on top.
+
+    Rows are the analysis's GUM budget (input, contribution = |sensitivity| x u,
+    share of the variance); inputs given without an uncertainty are shown as such,
+    since a zero there is often a missing number rather than a perfect one.
+    """
+    rows = [r for r in (a.result.get("budget") or []) if r.get("contribution") is not None]
     if not rows:
         return None
-    key = budget_value_key(a.result.get("budget")) or "contribution"
-    fig = _figure(WIDTH_IN * 0.65, 1.6 + 0.45 * len(rows))
+    rows = sorted(rows, key=lambda r: r["contribution"])
+    fig = _figure(WIDTH_IN * 0.7, 1.5 + 0.5 * len(rows))
     ax = fig.subplots()
-    names = [r[0] for r in rows][::-1]
-    vals = [abs(r[1]) for r in rows][::-1]
-    bars = ax.barh(names, vals, color="#5b8db8")
-    total = sum(v * v for v in vals) ** 0.5
-    for b, v in zip(bars, vals):
-        share = 100 * v * v / (total * total) if total else 0
-        pct = f"{share:.0f} %" if share >= 1 else "< 1 %"
-        ax.annotate(f"{v:.3g}  ({pct} of the variance)", (b.get_width(), b.get_y() + b.get_height() / 2),
-                    xytext=(4, 0), textcoords="offset points", va="center", fontsize=9)
-    ax.set_xlim(0, max(vals) * 1.45)
-    unit = _unit_of(key)
-    ax.set_xlabel(f"contribution to the standard uncertainty of the chip length ({unit})")
+    vals = [r["contribution"] for r in rows]
+    bars = ax.barh([r["input"] for r in rows], vals, color="#5b8db8")
+    for b, r in zip(bars, rows):
+        if not r.get("u"):
+            given_by_rig = str(r.get("input", "")).startswith("[")
+            label = "no uncertainty given in the rig (u = 0)" if given_by_rig else "taken as exact (u = 0)"
+        else:
+            share = 100 * (r.get("share") or 0.0)
+            label = f"{r['contribution']:.3g} \u00b5m  ({share:.0f} % of the variance)" if share >= 1 else \
+                f"{r['contribution']:.2g} \u00b5m  (< 1 % of the variance)"
+        ax.annotate(label, (b.get_width(), b.get_y() + b.get_height() / 2), xytext=(4, 0),
+                    textcoords="offset points", va="center", fontsize=9)
+    ax.set_xlim(0, max(max(vals), 1e-12) * 1.6)
+    ax.set_xlabel("contribution to the standard uncertainty of the chip length (\u00b5m)")
     r = a.result
-    ax.set_title(f"uncertainty budget: L = {_pm(r.get('length_um'), r.get('length_um_u'))} \u00b5m (k = 1)",
+    ax.set_title(f"uncertainty budget: chip length {_pm(r.get('length_um'), r.get('length_um_u'))} \u00b5m (k = 1)",
                  loc="left", fontsize=11)
     ax.grid(alpha=0.25, axis="x")
     return _save(fig, out_dir / "budget.png")
-
-
-def _unit_of(key: str) -> str:
-    for suffix, unit in (("_um", "\u00b5m"), ("_nm", "nm"), ("_steps", "steps"), ("_pct", "%"),
-                         ("_percent", "%"), ("_rel", "relative")):
-        if key.endswith(suffix):
-            return unit
-    return "\u00b5m"
 
 
 # --- the Markdown page -------------------------------------------------------
@@ -543,9 +588,10 @@ def _inputs_table(a: AnalyzedLog) -> list[tuple[str, str, str, str]]:
     """(input, value, standard uncertainty, source) for what the result depends on."""
     sec, r = a.sections, a.result
     st, gr, ch = sec["stage"], sec["grating"], sec["chip"]
-    n_blips = r.get("crossings")
+    fit = r.get("fit") or {}
     rows = [("mode spacing in actuator steps", _fmt(r.get("spacing_steps")), _fmt(r.get("spacing_steps_u")),
-             f"this log: fit of blip centre against mode number ({_fmt(n_blips)} blips, all passes)")]
+             f"this log: fit of blip centre against mode number ({_fmt(fit.get('n_modes'))} modes, "
+             f"{_fmt(r.get('crossings'))} blips over all passes)")]
     rows.append(("actuator calibration (deg/step)", _fmt(st["deg_per_step"]), _fmt(st["deg_per_step_u"]),
                  "rig `[stage] deg_per_step`, `deg_per_step_u`"))
     rows.append(("grating angle at step 0 (deg)", _fmt(st["angle_at_zero_deg"]), _fmt(st["angle_at_zero_deg_u"]),
@@ -558,7 +604,51 @@ def _inputs_table(a: AnalyzedLog) -> list[tuple[str, str, str, str]]:
     counter = sec.get("counter") or {}
     if counter:
         rows.append(("counter settings", ", ".join(f"{k} = {_fmt(v)}" for k, v in counter.items()), "",
-                     "rig `[counter]` (defaults unless set)"))
+                     "rig `[counter]` (defaults where the rig sets none)"))
+    return rows
+
+
+def _table(header: list[str], rows: list[list[Any]]) -> list[str]:
+    out = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    out += ["| " + " | ".join(_fmt(v) for v in row) + " |" for row in rows]
+    return out + [""]
+
+
+def _vu(v: Any, u: Any, unit: str) -> list[str]:
+    """[value, uncertainty] as text: u to two significant digits, the value to match
+    (the GUM's advice, JCGM 100 section 7.2.6); the full numbers are in summary.json."""
+    if v is None:
+        return ["n/a", ""]
+    if u is None or not math.isfinite(u) or u <= 0:
+        return [f"{_fmt(v)} {unit}", ""]
+    digits = max(0, 1 - int(math.floor(math.log10(u))))
+    return [f"{v:.{digits}f} {unit}", f"{u:.{digits}f} {unit}"]
+
+
+def _result_rows(r: dict) -> list[list[str]]:
+    rows = [["modes counted", _fmt(r.get("modes")), ""],
+            ["blips seen, all passes", _fmt(r.get("crossings")), ""],
+            ["mode spacing", *_vu(r.get("spacing_steps"), r.get("spacing_steps_u"), "steps")]]
+    if r.get("spacing_nm") is not None:
+        rows.append(["mode spacing", *_vu(r.get("spacing_nm"), r.get("spacing_nm_u"), "nm")])
+        rows.append(["wavelength at the centre of the counted range",
+                     *_vu(r.get("wavelength_nm"), r.get("wavelength_nm_u"), "nm")])
+    if r.get("length_um") is not None:
+        rows.append(["chip length", *_vu(r.get("length_um"), r.get("length_um_u"), "\u00b5m")])
+        mc = r.get("length_um_monte_carlo") or {}
+        if mc:
+            lo, hi = (mc.get("interval95") or [None, None])[:2]
+            v, u = _vu(mc.get("mean"), mc.get("u"), "\u00b5m")
+            rows.append([f"chip length, Monte Carlo check (JCGM 101, {_fmt(mc.get('draws'))} draws)",
+                         f"{v} (95 % interval {lo:.4g} to {hi:.4g})" if lo is not None else v, u])
+    if r.get("backlash_steps") is not None:
+        rows.append(["backlash (median up \u2212 down offset)", f"{r['backlash_steps']:.3g} steps", ""])
+    if r.get("spectral_period_steps") is not None:
+        rows.append(["cross-check: period of the trace (Lomb-Scargle)", f"{r['spectral_period_steps']:.6g} steps", ""])
+    bc = r.get("by_count") or {}
+    if bc:
+        rows.append([f"cross-check: by count ({_fmt(bc.get('intervals'))} intervals over "
+                     f"{bc.get('span_steps', 0):.6g} steps)", *_vu(bc.get("spacing_steps"), bc.get("spacing_steps_u"), "steps")])
     return rows
 
 
@@ -566,60 +656,74 @@ def write_markdown(a: AnalyzedLog, figures: list[Path], notes: list[str], path: 
     r, log = a.result, a.log
     passes = pass_directions(a.samples)
     ups = sum(1 for d in passes.values() if d > 0)
+    reason = log.meta("reason")
     md = [f"# modetick report: {log.path.name}", ""]
-    md += ["| run | |", "|---|---|",
-           f"| log | `{log.path}` |",
-           f"| started / ended (UTC) | {log.meta('started_utc') or 'n/a'} / {log.meta('ended_utc') or 'n/a'} |",
-           f"| status | {r.get('status') or 'n/a'}" + (f" ({log.meta('reason')})" if log.meta("reason") else "") + " |",
-           f"| samples | {r.get('samples')} in {len(passes)} passes ({ups} up, {len(passes) - ups} down) |",
-           f"| program | modetick {log.meta('program_version') or '?'} |", ""]
+    md += _table(["run", ""], [
+        ["log", f"`{log.path}`"],
+        ["started / ended (UTC)", f"{log.meta('started_utc') or 'n/a'} / {log.meta('ended_utc') or 'n/a'}"],
+        ["status", (r.get("status") or "n/a") + (f" ({reason})" if reason else "")],
+        ["samples", f"{r.get('samples')} in {len(passes)} passes ({ups} up, {len(passes) - ups} down)"],
+        ["written by", f"modetick {log.meta('program_version') or '?'}"]])
     md += ["> **Laser safety.** " + SAFETY_TEXT, ""]
 
-    md += ["## Result", "", "| quantity | value | standard uncertainty (k = 1) |", "|---|---|---|",
-           f"| modes counted | {_fmt(r.get('modes'))} | |",
-           f"| blips seen, all passes | {_fmt(r.get('crossings'))} | |",
-           f"| mode spacing | {_fmt(r.get('spacing_steps'))} steps | {_fmt(r.get('spacing_steps_u'))} steps |"]
-    if r.get("spacing_nm") is not None:
-        md += [f"| mode spacing | {_fmt(r.get('spacing_nm'))} nm | {_fmt(r.get('spacing_nm_u'))} nm |",
-               f"| wavelength at the sweep centre | {_fmt(r.get('wavelength_nm'))} nm | {_fmt(r.get('wavelength_nm_u'))} nm |",
-               f"| chip length | {_fmt(r.get('length_um'))} \u00b5m | {_fmt(r.get('length_um_u'))} \u00b5m |"]
-    if r.get("backlash_steps") is not None:
-        md += [f"| backlash | {_fmt(r.get('backlash_steps'))} steps | {_fmt(r.get('backlash_steps_u'))} steps |"]
-    md += [""]
+    md += ["## Result", ""]
+    md += _table(["quantity", "value", "standard uncertainty (k = 1)"], _result_rows(r))
     md += [f"- {n}" for n in notes] + ([""] if notes else [])
 
+    overrides = ", ".join(f"`{o}`" for o in a.rig.overrides)
+    where = "the rig stored in the log" if a.rig_from == "the log" else f"`{a.rig_from}`"
     md += ["## Inputs and their sources", "",
-           f"The rig is {'the one stored in the log' if a.rig_from == 'the log' else '`' + a.rig_from + '`'}"
-           f" (rig file `{a.rig.source}`"
-           + (", overrides " + ", ".join(f"`{o}`" for o in a.rig.overrides) if a.rig.overrides else "")
-           + ").", "",
-           "| input | value | standard uncertainty | source |", "|---|---|---|---|"]
-    md += [f"| {n} | {v} | {u} | {s} |" for n, v, u, s in _inputs_table(a)]
-    md += [""]
+           f"Calibration and chip data come from {where} (rig file `{a.rig.source}`"
+           + (f", overrides {overrides}" if overrides else "") + ").", ""]
+    md += _table(["input", "value", "standard uncertainty", "source"], [list(t) for t in _inputs_table(a)])
 
     budget = r.get("budget") or []
     if budget:
-        cols = list(budget[0].keys())
-        md += ["## Uncertainty budget (chip length)", "", "| " + " | ".join(cols) + " |",
-               "|" + "---|" * len(cols)]
-        md += ["| " + " | ".join(_fmt(row.get(c)) for c in cols) + " |" for row in budget]
-        md += [""]
+        md += ["## Uncertainty budget of the chip length (GUM, JCGM 100)", ""]
+        md += _table(["input", "value", "standard uncertainty", "sensitivity (\u00b5m per unit)",
+                      "contribution (\u00b5m)", "share of the variance", "source"],
+                     [[b.get("input"), b.get("value"), b.get("u"), b.get("sensitivity"), b.get("contribution"),
+                       f"{100 * (b.get('share') or 0):.1f} %", b.get("source")] for b in budget])
+
+    per_pass = r.get("per_pass") or []
+    if len(per_pass) > 1:
+        md += ["## Pass by pass", ""]
+        shown = per_pass if len(per_pass) <= 2 * PASS_ROWS_EACH_END else \
+            per_pass[:PASS_ROWS_EACH_END] + [None] + per_pass[-PASS_ROWS_EACH_END:]
+        md += _table(["pass", "direction", "blips", "modes", "spacing (steps)", "standard uncertainty (steps)"],
+                     [["\u2026", f"{len(per_pass) - 2 * PASS_ROWS_EACH_END} passes left out here "
+                       "(all are in summary.json, per_pass)", "", "", "", ""] if p is None else
+                      [p["pass"] + 1, "up" if p["direction"] > 0 else "down", p["crossings"], p["modes"],
+                       p.get("spacing_steps"), p.get("spacing_steps_u")] for p in shown])
 
     gaps = r.get("gaps") or []
     warnings = [e for e in a.events if e["kind"] in ("warning", "fault")]
     if gaps or warnings:
         md += ["## Gaps, warnings and faults", ""]
-        md += [f"- gap: {_fmt(g)}" for g in gaps]
+        md += [f"- gap in the mode numbers after mode {g.get('after_mode')}: {g.get('missing')} "
+               "mode(s) never seen (probably missed)" for g in gaps]
         md += [f"- {e['kind']} at sample {e['i']}: {e['detail']}" for e in warnings]
         md += [""]
 
     if figures:
         md += ["## Figures", ""]
-        md += [f"![{p.stem}]({p.name})" + "\n" for p in figures]
+        for p in figures:
+            md += [f"![{FIGURE_TITLES.get(p.stem, p.stem)}]({p.name})", ""]
 
     md += ["## Rig as used", "", "```toml", rig_toml(a.sections).rstrip(), "```", ""]
     path.write_text("\n".join(md), encoding="utf-8")
     return path
+
+
+FIGURE_TITLES = {
+    "trace": "the trace of each pass, blips marked and numbered",
+    "trace-detail": "a dozen modes at full resolution, up and down pass",
+    "fit": "blip centre against mode number, fit and residuals",
+    "spacings": "spread of the spacing between neighbouring modes",
+    "backlash": "up against down passes (backlash)",
+    "budget": "uncertainty budget of the chip length",
+    "passes": "blips and spacing pass by pass",
+}
 
 
 # --- everything ----------------------------------------------------------------
@@ -630,12 +734,16 @@ def report_notes(a: AnalyzedLog, passes: list[PassBlips]) -> list[str]:
         notes.append("No calibration in the rig (`[stage] deg_per_step`, `[stage] angle_at_zero_deg`, "
                      "`[grating] lines_per_mm`): spacing in actuator steps only, no nm figures, "
                      "no wavelength and no chip length.")
-    dirs = {pb.direction for pb in passes}
-    if len(dirs) < 2:
+    elif a.result.get("length_um") is None:
+        notes.append("No group index in the rig (`[chip] group_index`): no chip length and no budget.")
+    if len({pb.direction for pb in passes}) < 2:
         notes.append("The sweep went one way only: no up-against-down (backlash) figure; "
-                     "backlash needs at least one up and one down pass.")
-    if sum(pb.mode.size for pb in passes) < 2:
-        notes.append("Fewer than two blips counted: no fit, spacing or backlash figures.")
+                     "that needs at least one up and one down pass.")
+    if len(passes) > MAX_TRACE_PASSES:
+        shown = ", ".join(str(pb.pass_index + 1) for pb in trace_passes(passes))
+        notes.append(f"The trace figure shows passes {shown} of {len(passes)}; passes.png has every pass.")
+    if a.result.get("fit") in (None, {}):
+        notes.append("Too few modes for a fit (three or more are needed): no fit figure.")
     return notes
 
 
@@ -644,16 +752,9 @@ def write_report(a: AnalyzedLog, out_dir: Path) -> dict:
     out_dir.mkdir(parents=True, exist_ok=True)
     passes = blips_per_pass(a)
     notes = report_notes(a, passes)
-    figures = list(fig_trace(a, passes, out_dir))
-    for draw in (fig_fit, fig_spacings, fig_backlash):
-        p = draw(a, passes, out_dir)
-        if p is not None:
-            figures.append(p)
-    p = fig_budget(a, out_dir)
-    if p is not None:
-        figures.append(p)
-    elif a.calibrated():
-        notes.append("The analysis returned no uncertainty budget: no budget figure.")
+    drawn = [fig_trace(a, passes, out_dir), fig_trace_zoom(a, passes, out_dir), fig_fit(a, out_dir), fig_spacings(a, passes, out_dir),
+             fig_backlash(a, out_dir), fig_budget(a, out_dir), fig_passes(a, out_dir)]
+    figures = [p for p in drawn if p is not None]
     summary = out_dir / "summary.json"
     summary.write_text(json.dumps(a.result, indent=2) + "\n", encoding="utf-8")
     md = write_markdown(a, figures, notes, out_dir / "report.md")
