@@ -291,10 +291,11 @@ def fig_trace(a: AnalyzedLog, passes: list[PassBlips], out_dir: Path) -> Path:
 
 def zoom_window(passes: list[PassBlips], spacing_steps: float | None, modes_each_side: int = 6):
     """(lo, hi) steps around the middle counted mode, or None when there is nothing to zoom."""
-    pos = np.concatenate([pb.position_steps for pb in passes]) if passes else np.zeros(0)
+    pos = next((pb.position_steps for pb in passes if pb.position_steps.size >= 3), np.zeros(0))
     if pos.size < 3 or not spacing_steps:
         return None
-    mid = float(np.median(pos))
+    # Centred on a blip, so the window edges fall between blips, not across one.
+    mid = float(pos[np.argmin(np.abs(pos - np.median(pos)))])
     half = (modes_each_side + 0.5) * abs(spacing_steps)
     return mid - half, mid + half
 
@@ -558,7 +559,7 @@ def _fmt(v: Any) -> str:
         return "n/a"
     if isinstance(v, float):
         return f"{v:.6g}"
-    return str(v)
+    return str(v).replace("|", "\\|")      # a bar would end the Markdown table cell
 
 
 def _toml_value(v: Any) -> str:

@@ -187,3 +187,21 @@ def test_rough_many_pass_log(capsys, tmp_path, rough_log):
         assert modes.size > 50 and 20 < np.median(off) < 40
     finally:
         a.log.close()
+
+
+def test_log_without_blips_gives_a_trace_and_says_why_the_rest_is_missing(capsys, tmp_path):
+    # Laser below threshold all night: a flat, noisy trace through the real run log.
+    from daq.rig import load_rig
+    from daq.runlog import RunLog
+    rng = np.random.default_rng(11)
+    log = RunLog.create(tmp_path / "dark.db", load_rig(None, ["sweep.start=0", "sweep.stop=1999"]))
+    pos = np.arange(2000)
+    log.append_samples(pos * 1e-3, pos, np.ones(2000), np.zeros(2000), 0.3 + rng.normal(0, 0.002, 2000))
+    log.finish("finished")
+    log.close()
+    code, out, _ = cli(capsys, "report", tmp_path / "dark.db", "--out", tmp_path / "rep")
+    assert code == 0
+    assert {p.name for p in (tmp_path / "rep").glob("*.png")} == {"trace.png"}
+    assert "Too few modes for a fit" in out and "one way only" in out
+    s = json.loads((tmp_path / "rep" / "summary.json").read_text())
+    assert s["modes"] == 0 and s["spacing_steps"] is None
