@@ -9,7 +9,6 @@ limited by zlib and the counter, not by Python.
 """
 from __future__ import annotations
 
-import array
 import json
 import threading
 import time
@@ -85,29 +84,32 @@ def first_time_s(log: RunLog) -> float:
 class Blips:
     """Blip events as columns (a night can hold a quarter of a million of them)."""
 
-    def __init__(self):
-        # array.array: 8 bytes an entry where a list of Python numbers costs 40
-        self.i = array.array("q")
-        self.pos = array.array("d")
-        self.dir = array.array("b")
-        self.mode = array.array("q")
-
-    def add(self, i, pos, direction, mode) -> None:
-        self.i.append(int(i))
-        self.pos.append(float(pos) if pos is not None else float("nan"))
-        self.dir.append(int(direction) if direction is not None else 0)
-        self.mode.append(int(mode) if mode is not None else -1)
+    def __init__(self, i=(), pos=(), direction=(), mode=()):
+        self.i = np.asarray(i, dtype=np.int64)
+        self.pos = np.asarray(pos, dtype=np.float64)
+        self.dir = np.asarray(direction, dtype=np.int64)
+        self.mode = np.asarray(mode, dtype=np.int64)
 
     def __len__(self) -> int:
-        return len(self.i)
+        return int(self.i.size)
 
     @classmethod
     def from_log(cls, log: RunLog) -> "Blips":
-        b = cls()
-        for i, pos, d, mode in log.conn.execute(
-                "SELECT i, pos, dir, mode FROM events WHERE kind='blip' ORDER BY i, id"):
-            b.add(i, pos, d, mode)
-        return b
+        rows = log.conn.execute("SELECT i, COALESCE(pos, 'nan'), COALESCE(dir, 0), COALESCE(mode, -1) "
+                                "FROM events WHERE kind='blip' ORDER BY i, id").fetchall()
+        cols = np.array(rows, dtype=np.float64).reshape(-1, 4).T
+        return cls(cols[0], cols[1], cols[2], cols[3])
+
+    @staticmethod
+    def rows(events: list) -> np.ndarray:
+        """(index, position, direction, mode) of the blips among events, one row each."""
+        rows = [(e.index, e.position_steps, e.direction, e.mode) for e in events if e.kind == "blip"]
+        return np.array(rows, dtype=np.float64).reshape(-1, 4)
+
+    @classmethod
+    def from_rows(cls, parts: list[np.ndarray]) -> "Blips":
+        cols = (np.concatenate(parts) if parts else np.zeros((0, 4))).T
+        return cls(cols[0], cols[1], cols[2], cols[3])
 
 
 class Replay:
@@ -122,10 +124,10 @@ class Replay:
         self.out_log = out_log
         self.stop_flag = stop_flag or (lambda: False)
         self.pause_flag = pause_flag
-        self.blips = Blips()
+        self.blips = Blips()       # filled at the end of the run
+        self._blip_rows: list[np.ndarray] = []   # one small array a chunk: bounded, compact
         self.samples_done = 0
         self.wall_s = 0.0
-        self._shown_blips = 0
 
     def _wait_until(self, t_wall: float) -> bool:
         """Sleep until the monotonic time t_wall (False if a stop came first)."""
@@ -156,7 +158,7 @@ class Replay:
         st.total_samples = self.log.n_samples
         paced = self.speed is not None
         t_first = first_time_s(self.log) if paced else 0.0
-        feed, add_blip = counter.feed, self.blips.add
+        feed, keep, blip_rows = counter.feed, self._blip_rows.append, Blips.rows
         clock = time.monotonic
         t_start = clock()
         next_state = next_commit = t_start
@@ -172,9 +174,8 @@ class Replay:
                 status = "stopped"
                 break
             events = feed(c.position_steps, c.direction, c.value)
-            for ev in events:
-                if ev.kind == "blip":
-                    add_blip(ev.index, ev.position_steps, ev.direction, ev.mode)
+            if events:
+                keep(blip_rows(events))
             self.samples_done += len(c)
             last = c
             if out is not None:
@@ -187,23 +188,23 @@ class Replay:
             if now >= next_state:
                 self._show(c, events, now - t_start)
                 next_state = now + STATE_EVERY_S
-        self.wall_s = clock() - t_start
-        if last is not None:
-            self._show(last, [], self.wall_s)
         if out is not None:
             out.set_meta(counter_state=json.dumps(counter.get_state()))
-        self._finish_counting(last)
+        final = self._finish_counting(last)
+        self.wall_s = clock() - t_start
+        if last is not None:
+            self._show(last, final, self.wall_s)
         return status
 
-    def _finish_counting(self, last: Chunk | None) -> None:
+    def _finish_counting(self, last: Chunk | None) -> list:
         """End of the stream, as the live run ends (Engine.finish_counting): the open crossing counts."""
         events = self.counter.finish()
-        for ev in events:
-            if ev.kind == "blip":
-                self.blips.add(ev.index, ev.position_steps, ev.direction, ev.mode)
+        self._blip_rows.append(Blips.rows(events))
+        self.blips = Blips.from_rows(self._blip_rows)
+        self._blip_rows = []
         if self.out_log is not None and last is not None:
             self.out_log.append_events(self._event_rows(last, events), commit=True)
-        self.state.estimate = self.counter.estimate()
+        return events
 
     def _write(self, c: Chunk, events) -> None:
         self.out_log.append_samples(c.t_s, c.position_steps, c.direction, c.pass_index, c.value, c.spread,
@@ -234,9 +235,7 @@ class Replay:
             st.t_s = float(c.t_s[-1])
         k = min(n, st.recent.maxlen or n)
         st.recent.extend(zip(range(end - k, end), c.value[n - k:].tolist()))
-        new = self.blips.i[max(self._shown_blips, len(self.blips) - 64):]
-        st.recent_blips.extend(new)
-        self._shown_blips = len(self.blips)
+        st.recent_blips.extend(ev.index for ev in events if ev.kind == "blip")
         st.estimate = self.counter.estimate()
 
 
@@ -263,8 +262,8 @@ def _match(a: np.ndarray, b: np.ndarray, tol: float) -> tuple[np.ndarray, np.nda
 
 
 def _listed(blips: Blips, idx: np.ndarray) -> list[dict]:
-    return [{"i": blips.i[k], "position_steps": round(blips.pos[k], 2), "direction": blips.dir[k],
-             "mode": blips.mode[k]} for k in idx[:LISTED]]
+    return [{"i": int(blips.i[k]), "position_steps": round(float(blips.pos[k]), 2),
+             "direction": int(blips.dir[k]), "mode": int(blips.mode[k])} for k in idx[:LISTED]]
 
 
 def _modes_listed(blips: Blips, modes: list[int]) -> list[dict]:
@@ -326,7 +325,7 @@ def changes(logged_summary: dict | None, logged: Blips, result: dict, replayed: 
     """The replay's result against the logged run's: headline numbers, then blips and modes."""
     ref = dict(logged_summary or {})
     if not ref and len(logged):
-        ref = {"modes": len(set(logged.mode) - {-1}), "crossings": len(logged)}
+        ref = {"modes": len(set(logged.mode.tolist()) - {-1}), "crossings": len(logged)}
     out: dict = {"logged": {k: ref.get(k) for k in ("modes", "crossings", "spacing_steps", "spacing_nm", "length_um")
                             if k in ref}}
     out.update(compare_blips(logged, replayed))
