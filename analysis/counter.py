@@ -26,6 +26,7 @@ so feeding the same stream in any pieces gives the same events.
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import asdict, dataclass
 from typing import Any
 
@@ -39,25 +40,34 @@ SETTINGS: dict[str, Any] = {
     "confirm_sigma": 3.0,     # the 3-point median must reach this too (spikes do not)
     "min_height": 0.0,        # absolute floor for the trigger, detector units (0 = none)
     "baseline_window": 512,   # samples; longer than the widest blip, shorter than drift
-    "noise_window": 8192,     # samples the noise level is averaged over
+    "noise_window": 32768,    # samples the noise level is averaged over
     "merge_fraction": 0.5,    # structure closer than this fraction of the spacing is one mode
     "expected_spacing_steps": 0.0,  # 0 = learn the spacing from the first blips
 }
 
 BLOCK = 8            # samples per baseline block
-GROUP = 2048         # samples per noise/spacing update (a multiple of BLOCK)
+GROUP = 8192         # samples per noise update (a multiple of BLOCK)
+INIT_NOISE = 2048    # samples the first noise level is taken from
+NOISE_STRIDE = 4     # the noise level is estimated on every 4th sample (a divisor of BLOCK)
+NOISE_CLIP = 4.0     # excursions below the baseline count at most this many sigma
+EVENT_GROUP = 65536  # samples per update of the running spacing and typical blip
+BATCH = 65536        # samples the work waits for (or max_latency_s), see StreamCounter;
+                     # also the most done in one pass: bigger temporaries cost page faults
+VECTOR_MIN = 24      # fewer candidates than this are handled one by one
+EVENT_MIN = 64       # candidates that wait to be counted together (see max_latency_s)
 N_INIT = 12          # candidates in one run before the spacing is first estimated
+INIT_COUNTS = (12, 24, 48, 96, 192)   # candidate counts at which that is tried
 GAP_MEMORY = 24      # recent spacings the running spacing is the median of
 MAX_RUN_SAMPLES = 65536   # samples of the runs kept for the first backlash fit
 FIT_TRAVEL = 4.0     # spacings travelled after the first reversal before the backlash fit
-WEAK_WIDTH = 0.3     # a crossing narrower than this fraction of the typical width,
-WEAK_HEIGHT = 0.25   # or lower than this fraction of the typical height, is "weak":
-                     # numbered, but never the anchor the next crossings are numbered from
-MAIN_HEIGHT = 0.35   # a crossing with no candidate this tall (of typical) is weak too
+WEAK_WIDTH = 0.3     # a crossing narrower than this fraction of the typical width is
+                     # "weak": numbered, never the anchor of the numbering, no mode alone
+MAIN_HEIGHT = 0.35   # ... and so is one lower than this fraction of the typical height
+OFF_LATTICE = 0.25   # ... that lies more than this many spacings off the mode lattice
 MAX_SPAN = 0.65      # a crossing never spans more than this many spacings
 # mean |negative excursion| below the baseline -> noise sigma; calibrated on
 # white Gaussian noise against the default baseline window (see tests).
-KAPPA = 1.45
+KAPPA = 1.53
 
 
 def validate_settings(settings: dict) -> list[tuple[str, str]]:
@@ -138,7 +148,9 @@ def initial_spacing(runs: list[np.ndarray], weights: list[np.ndarray] | None = N
     split structure): the longest period with a strong peak is the spacing.
     It is then refined by merging candidates closer than half of it and taking
     the median gap between the merged centres. Returns (spacing, number of
-    spacings the candidates span); (None, 0) if there are too few.
+    spacings the candidates span); the span is 0 when fewer than 70 % of the
+    lattice places are occupied (the period found is then finer structure,
+    not the spacing), and (None, 0) if there are too few candidates.
     """
     runs = [np.asarray(r, float) for r in runs]
     if weights is None:
@@ -155,23 +167,28 @@ def initial_spacing(runs: list[np.ndarray], weights: list[np.ndarray] | None = N
     tmax = span / 3.0
     t0 = None
     if tmax > tmin:
-        rel = max(0.02 * tmin / span, 1e-4)
+        def power(grid):
+            pw = np.zeros(grid.size)
+            norm = 0.0
+            for r, w in use:
+                w = np.maximum(w, 0) + 1e-12
+                pw += np.abs(np.exp(2j * np.pi * (r - r[0])[None, :] / grid[:, None]) @ w) ** 2
+                norm += w.sum() ** 2
+            return pw / norm
+
+        # peaks are about T/span wide (relative): a grid at a quarter of that, then refined
+        rel = 0.25 * tmin / span
         grid = np.exp(np.arange(np.log(tmin), np.log(tmax), rel))
-        if grid.size > 20000:
-            grid = np.exp(np.linspace(np.log(tmin), np.log(tmax), 20000))
-        power = np.zeros(grid.size)
-        norm = 0.0
-        for r, w in use:
-            w = np.maximum(w, 0) + 1e-12
-            ph = np.exp(2j * np.pi * (r - r[0])[None, :] / grid[:, None])
-            power += np.abs(ph @ w) ** 2
-            norm += w.sum() ** 2
-        power /= norm
-        peak = (power[1:-1] >= power[:-2]) & (power[1:-1] >= power[2:])
+        if grid.size > 4000:
+            grid = np.exp(np.linspace(np.log(tmin), np.log(tmax), 4000))
+        pw = power(grid)
+        peak = (pw[1:-1] >= pw[:-2]) & (pw[1:-1] >= pw[2:])
         cand = np.flatnonzero(peak) + 1
-        strong = cand[power[cand] >= 0.35 * power.max()]
+        strong = cand[pw[cand] >= 0.35 * pw.max()]
         if strong.size:
-            t0 = float(grid[strong.max()])
+            j = int(strong.max())
+            fine = np.linspace(grid[j - 1], grid[j + 1], 41)
+            t0 = float(fine[int(np.argmax(power(fine)))])
     if t0 is None:
         t0 = float(np.quantile(gaps, 0.75))
     merged = []
@@ -188,7 +205,12 @@ def initial_spacing(runs: list[np.ndarray], weights: list[np.ndarray] | None = N
     s = t0
     for _ in range(3):
         s = float(np.median(g / np.maximum(1.0, np.rint(g / s))))
-    return (s, span / s) if s > 0 else (None, 0.0)
+    if s <= 0:
+        return None, 0.0
+    # a real spacing leaves few places of its lattice empty (a missed blip now
+    # and then); the finer structure inside split blips leaves most of them empty
+    occupied = (g.size + len(merged)) / (np.sum(np.maximum(1.0, np.rint(g / s))) + len(merged))
+    return s, (span / s if occupied >= 0.7 else 0.0)
 
 
 class _Buf:
@@ -232,6 +254,7 @@ class _ModeTable:
         self.sum = np.zeros((2, 0))
         self.sq = np.zeros((2, 0))
         self.seen = z.copy()
+        self.strong = z.copy()        # trusted (non-weak) crossings per mode
         self.hsum = z.copy()
         self.wsum = z.copy()
 
@@ -252,28 +275,51 @@ class _ModeTable:
 
         self.cnt, self.sum, self.sq = grow(self.cnt), grow(self.sum), grow(self.sq)
         self.seen, self.hsum, self.wsum = grow(self.seen), grow(self.hsum), grow(self.wsum)
+        self.strong = grow(self.strong)
         self.off = lo
+
+    def add1(self, k: int, d: int, pos: float, h: float, w: float, reliable: bool) -> None:
+        """add() for one crossing, without numpy overhead."""
+        if not self.seen.size or not self.off <= k < self.off + self.seen.size:
+            self._grow(k, k)
+        i = k - self.off
+        self.seen[i] += 1.0
+        self.hsum[i] += h
+        self.wsum[i] += w
+        if reliable:
+            self.strong[i] += 1.0
+            row = 1 if d < 0 else 0
+            self.cnt[row, i] += 1.0
+            self.sum[row, i] += pos
+            self.sq[row, i] += pos * pos
 
     def add(self, k, d, pos, h, w, reliable) -> None:
         k = np.asarray(k, np.int64)
         if k.size == 0:
             return
-        self._grow(int(k.min()), int(k.max()))
-        i = k - self.off
-        np.add.at(self.seen, i, 1.0)
-        np.add.at(self.hsum, i, np.asarray(h, float))
-        np.add.at(self.wsum, i, np.asarray(w, float))
+        kmin, kmax = int(k.min()), int(k.max())
+        self._grow(kmin, kmax)
+        i = k - kmin
+        sl = slice(kmin - self.off, kmax - self.off + 1)
+        n = kmax - kmin + 1
+        self.seen[sl] += np.bincount(i, minlength=n)
+        self.hsum[sl] += np.bincount(i, weights=np.asarray(h, float), minlength=n)
+        self.wsum[sl] += np.bincount(i, weights=np.asarray(w, float), minlength=n)
         rel = np.asarray(reliable, bool)
-        if rel.any():
-            row = (np.asarray(d)[rel] < 0).astype(np.int64)   # 0 = up, 1 = down
-            p = np.asarray(pos, float)[rel]
-            np.add.at(self.cnt, (row, i[rel]), 1.0)
-            np.add.at(self.sum, (row, i[rel]), p)
-            np.add.at(self.sq, (row, i[rel]), p * p)
+        d = np.asarray(d)
+        p = np.asarray(pos, float)
+        self.strong[sl] += np.bincount(i[rel], minlength=n)
+        for row, sel in ((0, rel & (d > 0)), (1, rel & (d < 0))):
+            if sel.any():
+                ii, pp = i[sel], p[sel]
+                self.cnt[row, sl] += np.bincount(ii, minlength=n)
+                self.sum[row, sl] += np.bincount(ii, weights=pp, minlength=n)
+                self.sq[row, sl] += np.bincount(ii, weights=pp * pp, minlength=n)
 
     def to_state(self) -> dict:
         return {"off": self.off, "cnt": self.cnt.tolist(), "sum": self.sum.tolist(),
-                "sq": self.sq.tolist(), "seen": self.seen.tolist(), "hsum": self.hsum.tolist(),
+                "sq": self.sq.tolist(), "seen": self.seen.tolist(), "strong": self.strong.tolist(),
+                "hsum": self.hsum.tolist(),
                 "wsum": self.wsum.tolist()}
 
     @classmethod
@@ -284,9 +330,30 @@ class _ModeTable:
         t.sum = np.array(st["sum"], float).reshape(2, -1)
         t.sq = np.array(st["sq"], float).reshape(2, -1)
         t.seen = np.array(st["seen"], float)
+        t.strong = np.array(st["strong"], float)
         t.hsum = np.array(st["hsum"], float)
         t.wsum = np.array(st["wsum"], float)
         return t
+
+
+def _block_means(seg: np.ndarray) -> np.ndarray:
+    """Means of consecutive BLOCK-sample blocks (the last may be short), added in a fixed order."""
+    full = seg.size // BLOCK
+    m = seg[:full * BLOCK].reshape(full, BLOCK)
+    s = m[:, 0].copy()
+    for j in range(1, BLOCK):
+        s += m[:, j]
+    s /= BLOCK
+    if full * BLOCK < seg.size:
+        s = np.append(s, seg[full * BLOCK:].mean())
+    return s
+
+
+def _median(v) -> float:
+    """Median of a short list (sorted in Python: cheaper than numpy for a few dozen values)."""
+    s = sorted(v)
+    n = len(s)
+    return float(s[n // 2]) if n % 2 else 0.5 * (float(s[n // 2 - 1]) + float(s[n // 2]))
 
 
 def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = None
@@ -346,9 +413,15 @@ def _wls(x, y, w, deg):
 
 
 class StreamCounter:
-    """Counts chip modes in a stream of (commanded position, direction, value) samples."""
+    """Counts chip modes in a stream of (commanded position, direction, value) samples.
 
-    def __init__(self, settings: dict | None = None):
+    ``feed`` only stores the chunk; the work runs in batches of at least
+    BATCH samples, or once ``max_latency_s`` has passed since the last batch,
+    or when a read-out (``modes``, ``crossings``, ``estimate()``) is asked for.
+    Results never depend on where the batches fall; only when events come out.
+    """
+
+    def __init__(self, settings: dict | None = None, *, max_latency_s: float = 0.1):
         s = dict(SETTINGS)
         if settings:
             unknown = set(settings) - set(SETTINGS)
@@ -360,16 +433,23 @@ class StreamCounter:
             key, msg = problems[0]
             raise ValueError(f"[counter] {key}: {msg}")
         self.settings = s
+        self.max_latency_s = max_latency_s
         wb = max(3, int(round(s["baseline_window"] / BLOCK)))
         self._wb = wb if wb % 2 else wb + 1        # odd number of blocks
         self._margin = self._wb                     # blocks of look-ahead the baseline needs
         self._alpha = min(1.0, GROUP / float(s["noise_window"]))
         self._f = float(s["merge_fraction"])
+        self._lo = float(s["lo_sigma"])
+        self._hi = float(s["hi_sigma"])
+        self._conf = float(s["confirm_sigma"])
+        self._minh = float(s["min_height"])
+        self._last_proc = time.monotonic()
+        self._work = np.empty(0)     # scratch for the dropout filter (no page faults per pass)
         # --- sample stage ---
         self._xb = _Buf(np.float64)  # samples from absolute index _t0
         self._pb = _Buf(np.float64)
         self._db = _Buf(np.int8)
-        self._t0 = 0                 # absolute index of the buffers' first sample
+        self._t0 = 0
         self._n = 0                  # samples received
         self._done = 0               # samples through the detector
         self._last_dir = 0           # direction of the last sample through the detector
@@ -381,25 +461,29 @@ class StreamCounter:
         self._bb0 = 0
         self._sigma: float | None = None
         self._floor = 0.0
-        self._ema: list[float] | None = None   # [sum |neg|, count]
-        self._gacc = [0.0, 0.0]                 # current group's noise sums
-        self._gneg: list[float] = []            # ... its per-block sums of negative excursions
+        self._ema: list[float] | None = None    # [sum |neg|, count] running averages
+        self._gcnt = 0.0                         # current group: negative samples
+        self._gneg: list[np.ndarray] = []        # ... and per-block sums of their excursions
         self._rmax = 0.0
         self._gmax = 0.0
-        self._open = -1              # start of the run above lo that is still open
+        self._open = -1              # start of the run above lo still open at _done
         self._open_trig = False
         self._revs: list[int] = []   # recent reversal indices (to cut candidates at turns)
         self._finished = False
-        self._finished_scan = False
-        self._done_events = 0
+        self._final_scan = False
+        self._ev_done = 0            # samples through the event stage
+        self._pend: list[tuple] = []      # candidate runs (starts, ends, confirm levels) not yet counted
+        self._npend = 0
+        self._pend_revs: list[tuple] = []  # reversals not yet counted
         # --- event stage ---
         es = float(s["expected_spacing_steps"])
         self._S: float | None = es if es > 0 else None
         self._phase = "run" if self._S else "init"
-        self._held: list[list] = []  # ["c", cand tuple] / ["r", (index, pos, dir)] in time order
+        self._held: list[list] = []  # ["c", columns] / ["r", (index, pos, dir)] / ["g", 0]
         self._lastrev: tuple | None = None   # (index, position, new direction)
+        self._init_checked = 0       # candidate count the first spacing was last tried at
         self._P: dict | None = None  # the crossing still open to merging
-        self._L: dict | None = None  # the last finalised crossing
+        self._L: dict | None = None  # the last non-weak crossing
         self._gaps: list[float] = []
         self._ns: list[int] = []
         self._gaps_new = False
@@ -410,12 +494,12 @@ class StreamCounter:
         self._b: float | None = None
         self._bpairs: list[float] = []
         self._run = 0
-        # crossings of the current and the previous run: [[ks], [centres], [heights], dir, reliable]
+        # crossings of the current and the previous run: [[ks], [centres], [heights], dir, [reliable]]
         self._run_cur: list[list] = []
         self._run_prev: list[list] = []
         self._n_cross = 0
         self._table = _ModeTable()
-        self._records: list[dict] = []
+        self._records: list[tuple] = []
         self._out: list[Event] = []
         self._est_cache: tuple | None = None
 
@@ -432,20 +516,29 @@ class StreamCounter:
                              f"({p.size}, {d.size}, {x.size})")
         if p.size == 0:
             return self._take()
-        if not np.all(np.isfinite(x)):
+        if not np.isfinite(x).all():
             raise ValueError("feed: value contains NaN or infinity")
-        d = np.sign(d).astype(np.int8)
-        if not d.all():              # 0 = no move: keep the last direction
-            idx = np.where(d != 0, np.arange(d.size), -1)
-            np.maximum.accumulate(idx, out=idx)
-            last_in = int(self._d[-1]) if self._d.size else self._last_in
-            d = np.where(idx >= 0, d[np.maximum(idx, 0)], last_in or 1).astype(np.int8)
+        if d.dtype.kind == "f":
+            d = np.sign(d)
+        d = d.astype(np.int8, copy=False)
+        if not d.all() or d.max() > 1 or d.min() < -1:
+            d = np.sign(d).astype(np.int8)
+            if not d.all():              # 0 = no move: keep the last direction
+                idx = np.where(d != 0, np.arange(d.size), -1)
+                np.maximum.accumulate(idx, out=idx)
+                last_in = self._last_in
+                d = np.where(idx >= 0, d[np.maximum(idx, 0)], last_in or 1).astype(np.int8)
         self._xb.extend(x)
         self._pb.extend(p)
         self._db.extend(d)
         self._n += x.size
         self._last_in = int(d[-1])
-        self._process(final=False)
+        now = time.monotonic()
+        if now - self._last_proc >= self.max_latency_s:
+            self._process(final=False, events=True)
+            self._last_proc = now
+        elif self._n - self._done >= BATCH + (self._margin + 2) * BLOCK:
+            self._process(final=False)
         return self._take()
 
     def finish(self) -> list[Event]:
@@ -464,9 +557,31 @@ class StreamCounter:
         out, self._out = self._out, []
         return out
 
+    def _flush(self) -> None:
+        """Bring the event stage up to date (read-outs call this)."""
+        if not self._finished:
+            self._process(final=False, events=True)
+            self._last_proc = time.monotonic()
+
     # ------------------------------------------------------------ sample stage
-    def _process(self, final: bool) -> None:
-        n = self._n
+    def _process(self, final: bool, events: bool = False) -> None:
+        """Work through the stored samples in passes of at most BATCH samples.
+
+        Candidates wait until EVENT_MIN of them are pending (the counter's
+        fixed costs then spread over many); ``events`` runs them now.
+        """
+        while True:
+            n_to = min(self._n, self._done + BATCH + (self._margin + 2) * BLOCK)
+            last = n_to >= self._n
+            before = self._done
+            self._process_to(n_to, final and last)
+            if last or self._done == before:
+                break
+        if events and (self._pend or self._pend_revs or self._ev_done < self._done):
+            self._run_events()
+
+    def _process_to(self, n: int, final: bool) -> None:
+        """Detect and count over samples up to n (all of them if final)."""
         # a block needs one sample after it (the dropout filter looks at both neighbours)
         nb_target = -(-n // BLOCK) if final else (n - 1) // BLOCK
         if nb_target > self._nb:
@@ -480,41 +595,46 @@ class StreamCounter:
                 xs = np.concatenate((xs, xs[-1:]))
             # a single-sample dropout is raised to the lower of its neighbours, so
             # it cannot pull the baseline down (blip troughs are wider than that)
-            seg = np.maximum(xs[1:-1], np.minimum(xs[:-2], xs[2:]))
-            # reduceat adds in a fixed order: block means are bit-identical however chunked
-            starts = np.arange(0, seg.size, BLOCK)
-            means = np.add.reduceat(seg, starts) / np.minimum(BLOCK, seg.size - starts)
-            self._bmb.extend(means)
+            ns = xs.size - 2
+            if self._work.size < ns:
+                self._work = np.empty(max(ns, BATCH + (self._margin + 4) * BLOCK))
+            seg = self._work[:ns]
+            np.minimum(xs[:-2], xs[2:], out=seg)
+            np.maximum(xs[1:-1], seg, out=seg)
+            self._bmb.extend(_block_means(seg))
             self._nb = nb_target
         if final:
             fb, F = self._nb, n
-            self._finished_scan = True
+            self._final_scan = True
         else:
             fb = self._nb - self._margin
             F = fb * BLOCK
         if F <= self._done:
             return
         if self._sigma is None:
-            g_end = min(GROUP, n)
+            g_end = min(INIT_NOISE, n)
             if F < g_end:
                 return
             self._init_noise(g_end)
         b0 = self._done // BLOCK
-        base = self._baseline_blocks(b0, fb)
-        self._bbb.extend(base)
-        cands: list[tuple] = []
-        revs = self._reversals(self._done, F)
-        a = self._done
-        while a < F:
-            g = a // GROUP
-            b = min(F, (g + 1) * GROUP)
-            self._scan(a, b, cands, final and b == F)
-            if b == (g + 1) * GROUP or (final and b == F):
-                self._end_group_noise(b)
-            a = b
+        self._bbb.extend(self._baseline_blocks(b0, fb))
+        spans = self._scan(self._done, F, final)
+        if spans is not None:
+            self._pend.append(spans)
+            self._npend += spans[0].size
+        self._pend_revs.extend(self._reversals(self._done, F))
         self._done = F
-        self._events(cands, revs, F, final)
+        if final or self._npend >= EVENT_MIN:
+            self._run_events()
         self._trim()
+
+    def _run_events(self) -> None:
+        """Measure the pending candidates and run the counter over them, up to _done."""
+        spans = None
+        if self._pend:
+            spans = tuple(np.concatenate(v) for v in zip(*self._pend))
+        revs, self._pend, self._npend, self._pend_revs = self._pend_revs, [], 0, []
+        self._events(spans, revs, self._done)
 
     def _init_noise(self, g_end: int) -> None:
         """Noise of the first group from the first group itself (look-ahead at start only)."""
@@ -522,9 +642,11 @@ class StreamCounter:
         base = self._baseline_blocks(0, nbl)
         x = self._x[:g_end]
         r = x - np.repeat(base, BLOCK)[:g_end]
-        neg = np.minimum(r, 0.0)
-        cnt = float(np.count_nonzero(r < 0))
+        neg = np.minimum(r[::NOISE_STRIDE], 0.0)
+        cnt = float(np.count_nonzero(neg))
         sig = KAPPA * (-neg.sum() / cnt) if cnt else 0.0
+        for _ in range(2):                    # the same clipping as later groups get
+            sig = KAPPA * (-np.maximum(neg, -NOISE_CLIP * sig).sum() / cnt) if cnt else 0.0
         dx = np.abs(np.diff(x))
         dx = dx[dx > 0]
         q = float(dx.min()) if dx.size else 0.0
@@ -545,147 +667,214 @@ class StreamCounter:
 
     def _reversals(self, a: int, b: int) -> list[tuple]:
         d = self._d[a - self._t0:b - self._t0]
+        if d.size == 0:
+            return []
         prev = self._last_dir
-        out = []
-        if d.size:
-            if prev and d[0] != prev:
-                out.append(a)
-            ch = np.flatnonzero(d[1:] != d[:-1]) + 1
-            out.extend((a + ch).tolist())
-            self._last_dir = int(d[-1])
-        res = [(i, float(self._p[i - self._t0]), int(self._d[i - self._t0])) for i in out]
-        self._revs.extend(i for i, _, _ in res)
+        self._last_dir = int(d[-1])
+        if d.min() == d.max() and (not prev or d[0] == prev):
+            return []
+        out = [a] if prev and d[0] != prev else []
+        out.extend((a + 1 + np.flatnonzero(d[1:] != d[:-1])).tolist())
+        p = self._p
+        res = [(i, float(p[i - self._t0]), int(d[i - a])) for i in out]
+        self._revs.extend(out)
         return res
 
-    def _scan(self, a: int, b: int, cands: list, close_at_end: bool) -> None:
-        """Hysteresis over samples [a, b) of one group; completed candidates -> cands."""
+    def _scan(self, a: int, F: int, final: bool):
+        """Hysteresis over samples [a, F); returns completed candidate runs (start, end, confirm).
+
+        Per block, the maximum says whether a trigger can be inside and the
+        minimum whether the whole block lies above the re-arm level. Only
+        blocks holding a trigger, grown through blocks wholly above the re-arm
+        level and by one block each side (where such a run must end), are
+        looked at sample by sample: runs without a trigger never count.
+        """
         t0 = self._t0
-        x = self._x[a - t0:b - t0]
-        ba = a // BLOCK - self._bb0
-        bb = -(-b // BLOCK) - self._bb0
-        base = np.repeat(self._bb[ba:bb], BLOCK)[a % BLOCK:a % BLOCK + (b - a)]
-        r = x - base
-        neg = np.minimum(r, 0.0)
-        # per-block sums, added up once per group: independent of how samples arrive
-        self._gneg.extend(np.add.reduceat(neg, np.arange(0, neg.size, BLOCK)))
-        self._gacc[1] += float(np.count_nonzero(neg))
-        bm = self._bm[a // BLOCK - self._bm0: -(-b // BLOCK) - self._bm0]
-        bl = self._bb[ba:bb]
-        if bm.size and bl.size:
-            self._gmax = max(self._gmax, float(np.max(bm[:bl.size] - bl[:bm.size])))
-        sig = self._sigma
-        lo = self.settings["lo_sigma"] * sig
-        hi = max(self.settings["hi_sigma"] * sig, self.settings["min_height"])
-        m = r > lo
-        ch = np.flatnonzero(m[1:] != m[:-1]) + 1
-        if ch.size:
+        n = F - a
+        x = self._x[a - t0:F - t0]
+        ba = a // BLOCK
+        nbk = -(-n // BLOCK)
+        bl = self._bb[ba - self._bb0:ba + nbk - self._bb0]
+        # noise: excursions below the baseline on every NOISE_STRIDE-th sample
+        k = BLOCK // NOISE_STRIDE
+        sub = np.minimum(x[::NOISE_STRIDE] - np.repeat(bl, k)[:-(-n // NOISE_STRIDE)], 0.0)
+        bexc = self._bm[ba - self._bm0:ba + nbk - self._bm0] - bl
+        # block maxima and minima (a short last block is padded with its last sample)
+        xp = x if n % BLOCK == 0 else np.concatenate((x, np.full(BLOCK - n % BLOCK, x[-1])))
+        X = xp.reshape(nbk, BLOCK)
+        bmax = X[:, 0].copy()
+        bmin = X[:, 0].copy()
+        for j in range(1, BLOCK):
+            np.maximum(bmax, X[:, j], out=bmax)
+            np.minimum(bmin, X[:, j], out=bmin)
+        # the noise level in force per block (it changes only at group ends)
+        sig_at = np.empty(nbk)
+        g, s = a // GROUP, a
+        while s < F:
+            e = min(F, (g + 1) * GROUP)
+            bs, be = (s - a) // BLOCK, -(-(e - a) // BLOCK)
+            sig_at[bs:be] = self._sigma
+            # clipped at NOISE_CLIP sigma (sigma in force: fixed for the group), so spikes
+            # and dropouts do not inflate it; per-block sums in a fixed order
+            sg = np.maximum(sub[(s - a) // NOISE_STRIDE:-(-(e - a) // NOISE_STRIDE)],
+                            -NOISE_CLIP * self._sigma)
+            if sg.size % k:
+                sg = np.concatenate((sg, np.zeros(k - sg.size % k)))
+            bneg = sg[0::k].copy()
+            for j in range(1, k):
+                bneg += sg[j::k]
+            self._gneg.append(bneg)
+            self._gcnt += float(np.count_nonzero(sg))
+            self._gmax = max(self._gmax, float(bexc[bs:be].max()))
+            if e == (g + 1) * GROUP or (final and e == F):
+                self._end_group_noise()
+            s, g = e, g + 1
+        lo_t = bl + self._lo * sig_at
+        hi_t = bl + np.maximum(self._hi * sig_at, self._minh)
+        trig_b = bmax > hi_t
+        elig = (trig_b | (bmin > lo_t)).astype(np.int8)
+        edges = np.flatnonzero(np.diff(np.concatenate(([0], elig, [0]))))
+        cs_, ce_ = edges[0::2], edges[1::2]
+        ct = np.concatenate(([0], np.cumsum(trig_b)))
+        sel = ct[ce_] > ct[cs_]
+        carry = self._open >= 0
+        if carry and cs_.size:
+            sel[0] |= cs_[0] == 0
+        if not final and cs_.size:
+            sel[-1] |= ce_[-1] == nbk
+        r0 = np.maximum(cs_[sel] - 1, 0)
+        r1 = np.minimum(ce_[sel] + 1, nbk)
+        extra0 = [0] if carry else []
+        extra1 = [nbk - 1] if not final else []
+        if extra0 or extra1:
+            r0 = np.concatenate((extra0, r0, extra1)).astype(np.int64)
+            r1 = np.concatenate(([1] if carry else [], r1, [nbk] if not final else [])).astype(np.int64)
+            order = np.argsort(r0, kind="stable")
+            r0, r1 = r0[order], r1[order]
+        new_open = -1
+        out = None
+        if r0.size:
+            # merge overlapping or touching block ranges
+            reach = np.maximum.accumulate(r1)
+            brk = np.concatenate(([True], r0[1:] > reach[:-1]))
+            gid = np.cumsum(brk) - 1
+            m0 = r0[brk]
+            m1 = np.maximum.reduceat(r1, np.flatnonzero(brk))
+            s0 = m0 * BLOCK
+            s1 = np.minimum(m1 * BLOCK, n)
+            ln = s1 - s0
+            tot = int(ln.sum())
+            off = np.zeros(ln.size, np.int64)
+            np.cumsum(ln[:-1], out=off[1:])
+            li = np.repeat(s0 - off, ln) + np.arange(tot)        # sample indices in the batch
+            bi = li // BLOCK
+            xv = x[li]
+            m = xv > lo_t[bi]
+            # a run never joins two ranges: the start of each range reads as below
+            sep = off[1:] if carry and s0[0] == 0 else off
+            m[sep] = False
+            trig = a + li[np.flatnonzero(xv > hi_t[bi])]
+            ch = np.flatnonzero(m[1:] != m[:-1]) + 1
             up = m[ch]
             rises, falls = ch[up], ch[~up]
-        else:
-            rises = falls = ch
-        if m[0] and self._open < 0:
-            rises = np.concatenate(([0], rises))
-        if (not m[0]) and self._open >= 0:
-            falls = np.concatenate(([0], falls))
-        starts = a + rises
-        if self._open >= 0:
-            starts = np.concatenate(([self._open], starts))
-        ends = a + falls
-        trig = a + np.flatnonzero(r > hi)
-        if starts.size > ends.size:           # a run still open at b
-            if close_at_end:
-                ends = np.concatenate((ends, [b]))
-                new_open = -1
-            else:
-                new_open = int(starts[-1])
-                starts = starts[:-1]
-        else:
-            new_open = -1
-        if starts.size:
-            has = np.searchsorted(trig, starts) < np.searchsorted(trig, ends)
-            if self._open >= 0 and self._open_trig:
-                has[0] = True
-            conf = self.settings["confirm_sigma"] * sig
-            for s_, e_ in zip(starts[has].tolist(), ends[has].tolist()):
-                cands.append((s_, e_, conf))
-        if new_open >= 0:
-            carried = new_open == self._open
-            t_after = trig.size and trig[-1] >= new_open
-            self._open_trig = bool(t_after) or (carried and self._open_trig)
-        else:
+            if m[0] and not carry:
+                rises = np.concatenate(([0], rises))
+            if (not m[0]) and carry:
+                falls = np.concatenate(([0], falls))
+            starts = a + li[rises]
+            if carry:
+                starts = np.concatenate(([self._open], starts))
+            ends = a + li[falls]
+            if starts.size > ends.size:           # a run still open at F
+                if final:
+                    ends = np.concatenate((ends, [F]))
+                else:
+                    new_open = int(starts[-1])
+                    starts = starts[:-1]
+            if starts.size:
+                has = np.searchsorted(trig, starts) < np.searchsorted(trig, ends)
+                if carry and self._open_trig:
+                    has[0] = True
+                if has.any():
+                    st, en = starts[has], ends[has]
+                    # confirm against the noise in force where the run ended
+                    blk = np.minimum((np.minimum(en, F - 1) - a) // BLOCK, nbk - 1)
+                    out = (st, en, self._conf * sig_at[blk])
+            if new_open >= 0:
+                carried = new_open == self._open
+                t_after = trig.size and trig[-1] >= new_open
+                self._open_trig = bool(t_after) or (carried and self._open_trig)
+        if new_open < 0:
             self._open_trig = False
         self._open = new_open
+        return out
 
-    def _end_group_noise(self, b: int) -> None:
+    def _end_group_noise(self) -> None:
         """Close a group: fold its noise sums into the running average."""
-        acc = self._gacc
-        acc[0] = -float(np.sum(np.array(self._gneg)))
+        # the group's block sums are the same array however they arrived: same total
+        acc = (-float(np.concatenate(self._gneg).sum()) if self._gneg else 0.0, self._gcnt)
         self._gneg = []
+        self._gcnt = 0.0
         if self._ema is None:
             self._ema = [acc[0], acc[1]]
         else:
             a = self._alpha
             self._ema = [(1 - a) * self._ema[0] + a * acc[0], (1 - a) * self._ema[1] + a * acc[1]]
-        self._gacc = [0.0, 0.0]
         self._rmax = max(self._rmax, self._gmax)
         self._gmax = 0.0
-        if self._ema[1] > 0:
-            sig = KAPPA * self._ema[0] / self._ema[1]
-        else:
-            sig = self._sigma or 0.0
+        sig = KAPPA * self._ema[0] / self._ema[1] if self._ema[1] > 0 else (self._sigma or 0.0)
         self._sigma = max(sig, self._floor, 1e-3 * self._rmax)
 
-    def _split(self, spans: list[tuple]) -> list[tuple]:
+    def _split(self, st, en, conf):
         """Cut candidate runs at every reversal inside them: each piece lies in one run.
 
-        Returns (start, end, confirm level, cut on the left, cut on the right).
         A blip in progress at a turn (often its tail lasting into the backlash
         dead band) becomes a crossing of the old run and one of the new run.
         """
         revs = np.asarray(self._revs, np.int64)
-        st = np.array([s[0] for s in spans], np.int64)
-        en = np.array([s[1] for s in spans], np.int64)
         i0 = np.searchsorted(revs, st, side="right")
         i1 = np.searchsorted(revs, en - 1, side="right")
+        nocut = np.zeros(st.size, bool)
         if not (i1 > i0).any():
-            return [(s, e, c, False, False) for s, e, c in spans]
-        out = []
-        for (s, e, c), a, b in zip(spans, i0.tolist(), i1.tolist()):
-            if a == b:
-                out.append((s, e, c, False, False))
-                continue
+            return st, en, conf, nocut, nocut
+        s2, e2, c2, cl, cr = [], [], [], [], []
+        for s, e, c, a, b in zip(st.tolist(), en.tolist(), conf.tolist(), i0.tolist(), i1.tolist()):
             cuts = [s] + revs[a:b].tolist() + [e]
             for j in range(len(cuts) - 1):
-                out.append((cuts[j], cuts[j + 1], c, j > 0, j < len(cuts) - 2))
-        return out
+                s2.append(cuts[j])
+                e2.append(cuts[j + 1])
+                c2.append(c)
+                cl.append(j > 0)
+                cr.append(j < len(cuts) - 2)
+        return (np.array(s2, np.int64), np.array(e2, np.int64), np.array(c2),
+                np.array(cl, bool), np.array(cr, bool))
 
-    def _measure(self, pieces: list[tuple]) -> dict[str, np.ndarray]:
+    def _measure(self, st, en, cut_l, cut_r) -> dict[str, np.ndarray]:
         """Centre, area, height, extent and direction of candidate runs (vectorised).
 
         The centre is the intensity-weighted mean position of the samples above
         half the blip's (3-point-median) maximum: the tails, a neighbour's
         overlap and a dead-band plateau after a turn do not pull it.
         """
-        st = np.array([s[0] for s in pieces], np.int64)
-        en = np.array([s[1] for s in pieces], np.int64)
-        cut_l = np.array([s[3] for s in pieces], bool)
-        cut_r = np.array([s[4] for s in pieces], bool)
+        t0 = self._t0
         ln = en - st
         tot = int(ln.sum())
-        cs = np.concatenate(([0], np.cumsum(ln)[:-1]))
+        cs = np.zeros(ln.size, np.int64)
+        np.cumsum(ln[:-1], out=cs[1:])
+        # r over one contiguous range around all runs, one sample of margin each side
+        lo, hi = int(st[0]) - 1, int(en.max()) + 1
+        lo_c, hi_c = max(lo, t0), min(hi, t0 + self._x.size)
+        b_lo = lo_c // BLOCK
+        base = np.repeat(self._bb[b_lo - self._bb0:-(-hi_c // BLOCK) - self._bb0], BLOCK)
+        rr = self._x[lo_c - t0:hi_c - t0] - base[lo_c - b_lo * BLOCK:hi_c - b_lo * BLOCK]
+        # reflect at the ends of the stream (an edge sample is never its own neighbour)
+        if lo < lo_c:
+            rr = np.concatenate((rr[1:2], rr))
+        if hi > hi_c:
+            rr = np.concatenate((rr, rr[-2:-1] if self._final_scan else rr[-1:]))
         idx = np.repeat(st - cs, ln) + np.arange(tot)
-        t0 = self._t0
-        lastx = t0 + self._x.size - 1
-
-        def r_at(i):
-            # reflect at the ends of the stream, so an edge sample is its own neighbour never
-            i = np.where(i < 0, 1, i)
-            i = np.where((i > lastx) & self._finished_scan, lastx - 1, i)
-            i = np.clip(i, t0, lastx)
-            return self._x[i - t0] - self._bb[i // BLOCK - self._bb0]
-
-        r0 = r_at(idx)
-        rm, rp = r_at(idx - 1), r_at(idx + 1)
+        rel = idx - lo
+        r0, rm, rp = rr[rel], rr[rel - 1], rr[rel + 1]
         med = np.maximum(np.minimum(rm, r0), np.minimum(np.maximum(rm, r0), rp))
         hraw = np.maximum.reduceat(r0, cs)
         hmed = np.maximum.reduceat(med, cs)
@@ -699,72 +888,73 @@ class StreamCounter:
         above = med >= half
         pmin = np.minimum.reduceat(np.where(above, pos, np.inf), cs)
         pmax = np.maximum.reduceat(np.where(above, pos, -np.inf), cs)
-        step = np.abs(self._p[en - 1 - t0] - self._p[st - t0]) / np.maximum(ln - 1, 1)
-        safe = np.where(sw > 0, sw, 1.0)
-        cen = np.where(sw > 0, swp / safe, q[cs])
+        step = np.abs(self._p[en - 1 - t0] - ref) / np.maximum(ln - 1, 1)
+        cen = np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
         # peak: first sample of each run reaching its raw maximum
         hit = np.flatnonzero(r0 == np.repeat(hraw, ln))
-        seg_of_hit = np.searchsorted(cs, hit, side="right") - 1
-        first = np.unique(seg_of_hit, return_index=True)[1]
+        first = np.unique(np.searchsorted(cs, hit, side="right") - 1, return_index=True)[1]
         peak = idx[hit[first]]
         height = np.where(hraw <= 2.5 * hmed, hraw, hmed)
-        # a piece whose maximum sits at a cut was never crossed completely
-        partial = (cut_l & (peak - st <= 1)) | (cut_r & (en - 1 - peak <= 1))
+        # crossed from half height to half height, or not: a piece that starts at
+        # a cut (a turn, the start of the stream) or ends at one (a turn, the end)
+        # while still above half its maximum was only partly crossed
+        cut_l = cut_l | (st == 0)
+        if self._final_scan:
+            cut_r = cut_r | (en >= self._n)
+        half_m = 0.5 * hmed
+        partial = (cut_l & (med[cs] >= half_m)) | (cut_r & (med[cs + ln - 1] >= half_m))
         return {"start": st, "end": en, "peak": peak, "pos": ref + cen, "area": sw,
                 "height": height, "hmed": hmed, "d": self._d[st - t0].astype(np.int64),
                 "partial": partial, "pmin": pmin, "pmax": pmax, "step": step}
 
     # ------------------------------------------------------------- event stage
-    def _events(self, spans: list[tuple], revs: list[tuple], F: int, final: bool) -> None:
+    def _events(self, spans, revs: list[tuple], F: int) -> None:
         """Run the up/down counter over the new candidates and reversals, in time order."""
-        items: list[tuple] = []
-        if spans:
-            pieces = self._split(spans)
-            c = self._measure(pieces)
+        cols = None
+        if spans is not None:
+            st, en, conf, cl, cr = self._split(*spans)
+            c = self._measure(st, en, cl, cr)
             # single-sample spikes fail here: their 3-point median stays in the noise
-            conf = np.array([s[2] for s in pieces])
-            keep = np.flatnonzero(c["hmed"] > conf)
-            cols = [c[f][keep].tolist() for f in _CFIELDS]
-            items.extend((row[1], 0, "c", row) for row in zip(*cols))
-        items.extend((r[0], 1, "r", r) for r in revs)
-        # group ends in this batch, for spacing updates (after their candidates)
-        for g in range(self._done_events // GROUP + 1, F // GROUP + 1):
-            items.append((g * GROUP, 2, "g", g))
-        self._done_events = F
-        items.sort(key=lambda t: (t[0], t[1]))
-        block: list[tuple] = []
-        for _, _, kind, obj in items:
-            if kind == "c":
-                block.append(obj)
-                continue
-            if block:
-                self._dispatch_cands(block)
-                block = []
-            if kind == "r":
-                self._dispatch_rev(obj)
-            elif self._phase != "run":
-                self._held.append(["g", obj])
-            else:
-                self._end_group_spacing()
-        if block:
-            self._dispatch_cands(block)
+            keep = c["hmed"] > conf
+            if keep.any():
+                cols = {f: c[f][keep] for f in _CFIELDS}
+        # cut points: reversals (after candidates ending at or before them) and the
+        # ends of event groups (spacing updates), in time order
+        cuts = [(r[0], 1, "r", r) for r in revs]
+        g0 = self._ev_done // EVENT_GROUP + 1
+        cuts.extend((g * EVENT_GROUP, 2, "g", 0) for g in range(g0, F // EVENT_GROUP + 1))
+        self._ev_done = F
+        cuts.sort(key=lambda t: (t[0], t[1]))
+        i = 0
+        ends = cols["end"] if cols is not None else None
+        for t, prio, kind, obj in cuts:
+            if cols is not None:
+                j = int(np.searchsorted(ends, t, side="right"))
+                if j > i:
+                    self._dispatch_cands({f: v[i:j] for f, v in cols.items()})
+                    i = j
+            self._dispatch(kind, obj)
+        if cols is not None and i < ends.size:
+            self._dispatch_cands({f: v[i:] for f, v in cols.items()})
         if self._phase != "run":
             self._release(final=False)
 
-    # ---- dispatch (holding while the spacing or the first alignment is unknown)
-    def _dispatch_cands(self, rows: list[tuple]) -> None:
+    # ---- dispatch (holding while the spacing or the first backlash is unknown)
+    def _dispatch_cands(self, c: dict) -> None:
         if self._phase != "run":
-            self._held.extend(["c", r] for r in rows)
+            self._held.append(["c", c])
             self._release(final=False)
             return
-        self._run_cands(rows)
+        self._run_cands(c)
 
-    def _dispatch_rev(self, rev: tuple) -> None:
+    def _dispatch(self, kind: str, obj) -> None:
         if self._phase != "run":
-            self._held.append(["r", rev])
+            self._held.append([kind, obj])
             self._release(final=False)
-            return
-        self._on_reversal(rev)
+        elif kind == "r":
+            self._on_reversal(obj)
+        else:
+            self._end_group_spacing()
 
     def _release(self, final: bool) -> None:
         """Decide held items once enough are in, then replay them in order.
@@ -774,25 +964,48 @@ class StreamCounter:
         order, so when a release happens never changes what it yields.
         """
         if self._phase == "init":
-            runs, cur = [], []
+            # the first spacing is decided at fixed candidate counts (12, 24, 48...)
+            # from exactly that many candidates, whatever the batching
+            pos, area, h, w, run = [], [], [], [], []
+            r = 0
             for kind, obj in self._held:
                 if kind == "c":
-                    cur.append(obj)
+                    pos.append(obj["pos"])
+                    area.append(obj["area"])
+                    h.append(obj["height"])
+                    w.append(obj["pmax"] - obj["pmin"] + obj["step"])
+                    run.append(np.full(obj["pos"].size, r))
                 elif kind == "r":
-                    runs.append(cur)
-                    cur = []
-            runs.append(cur)
-            if not final and max(len(r) for r in runs) < N_INIT:
+                    r += 1
+            if not pos:
+                if not final:
+                    return
+                pos = area = h = w = run = [np.zeros(0)]
+            pos, area, h, w = (np.concatenate(v) for v in (pos, area, h, w))
+            run = np.concatenate(run).astype(np.int64)
+            counts = [cp for cp in INIT_COUNTS if cp <= pos.size]
+            if final and (not counts or counts[-1] != pos.size):
+                counts.append(pos.size)
+            chosen = None
+            for cp in counts:
+                if cp <= self._init_checked and cp != pos.size:
+                    continue
+                self._init_checked = cp
+                rr = run[:cp]
+                runs = [pos[:cp][rr == j] for j in range(int(rr.max()) + 1)] if cp else []
+                if not final and max((x.size for x in runs), default=0) < N_INIT:
+                    continue
+                ares = [area[:cp][rr == j] for j in range(int(rr.max()) + 1)] if cp else []
+                S, periods = initial_spacing(runs, ares) if cp else (None, 0.0)
+                if (S is not None and periods >= 4) or cp >= INIT_COUNTS[-1] or (final and cp == pos.size):
+                    # enough, or as good as it gets
+                    chosen = (cp, S)
+                    break
+            if chosen is None:
                 return
-            S, periods = initial_spacing([np.array([o[3] for o in r]) for r in runs],
-                                         [np.array([o[4] for o in r]) for r in runs])
-            if not final and (S is None or periods < 4) and sum(map(len, runs)) < 200:
-                return
-            self._S = S
-            allc = [o for r in runs for o in r]
-            if allc:
-                self._wtyp = float(np.median([o[9] - o[8] + o[10] for o in allc]))
-                self._htyp = float(np.median([o[5] for o in allc]))
+            cp, self._S = chosen
+            if cp:
+                self._wtyp, self._htyp = float(np.median(w[:cp])), float(np.median(h[:cp]))
         elif self._phase == "align":
             has_rev = any(kind == "r" for kind, _ in self._held)
             idx, rpos, newdir = self._lastrev
@@ -800,140 +1013,126 @@ class StreamCounter:
             travel = newdir * (latest - rpos)
             if not final and not has_rev and travel < FIT_TRAVEL * self._S:
                 return
-            self._b = self._fit_backlash(has_rev or final)
+            self._b = self._fit_backlash()
         else:
             return
         held, self._held = self._held, []
         self._phase = "run"
-        i = 0
-        while i < len(held):
-            kind, obj = held[i]
+        for i, (kind, obj) in enumerate(held):
             if self._phase != "run":          # a replayed reversal started holding again
                 self._held.extend(held[i:])
                 break
             if kind == "c":
-                j = i
-                while j < len(held) and held[j][0] == "c":
-                    j += 1
-                self._run_cands([h[1] for h in held[i:j]])
-                i = j
-                continue
-            if kind == "r":
-                self._on_reversal(obj)
+                self._run_cands(obj)
             else:
-                self._end_group_spacing()
-            i += 1
+                self._dispatch(kind, obj)
         if self._held:
             self._release(final)
 
     # ---- the up/down counter
-    def _first_after_reversal(self, pos: float, d: int) -> int:
-        """Mode index of the first (non-weak) crossing of a fresh run."""
+    def _first_after_reversal(self, pos: float, d: int) -> tuple[int, bool]:
+        """Mode index of the first (non-weak) crossing of a fresh run, and off the lattice?"""
         L, S = self._L, self._S
         if L is None:
-            return 0
+            return 0, False
         if S is None:
-            return L["k"] + (d if d == L["side"] else 0)
+            return L["k"] + (d if d == L["side"] else 0), False
         if d == L["side"]:
             # same direction as the last crossing: positions compare directly
-            n = int(np.rint(d * (pos - L["cent"]) / S))
+            xs = d * (pos - L["cent"]) / S
         elif self._b is not None:
             # back the other way: the last mode reappears shifted by the backlash
-            e = L["cent"] - L["side"] * self._b
-            n = int(np.rint(d * (pos - e) / S))
+            xs = d * (pos - (L["cent"] - L["side"] * self._b)) / S
         else:
-            n = 0
-        return L["k"] + d * n
+            return L["k"], False
+        n = int(np.rint(xs))
+        return L["k"] + d * n, abs(xs - n) > OFF_LATTICE
 
-    def _weak(self, width, height, partial_all):
-        """Crossings too narrow or weak to be a mode on their own (kick glimpses, cut tails)."""
+    def _weak(self, width, partial_all):
+        """Partly crossed or much too narrow to be a mode on their own (glimpses, cut tails)."""
         weak = np.asarray(partial_all, bool).copy()
         if self._wtyp:
             weak |= np.asarray(width) < WEAK_WIDTH * self._wtyp
-        if self._htyp:
-            weak |= np.asarray(height) < WEAK_HEIGHT * self._htyp
         return weak
 
-    def _run_cands(self, rows: list[tuple]) -> None:
+    def _run_cands(self, c: dict) -> None:
+        n = c["pos"].size
         i = 0
-        while i < len(rows):
+        while i < n:
             P = self._P
-            if P is None or P["fresh"] or not self._S:
-                self._one(rows[i])
+            if P is None or P["fresh"] or not self._S or n - i < VECTOR_MIN:
+                self._one(c, i)
                 i += 1
             else:
-                self._merge_block(rows[i:])
+                self._merge_block({f: v[i:] for f, v in c.items()})
                 return
 
-    def _new_pending(self, row: tuple, k: int, fresh: bool, anc_k, anc_cent, n: int) -> dict:
-        main = not self._htyp or row[5] >= MAIN_HEIGHT * self._htyp
-        return {"k": int(k), "d": int(row[6]), "ref": float(row[3]), "sw": float(row[4]),
-                "swp": 0.0, "last": float(row[3]), "h": float(row[5]), "peak": int(row[2]),
-                "hasmain": bool(main),
-                "start": int(row[0]), "end": int(row[1]), "parts": 1, "npartial": int(bool(row[7])),
-                "pmin": float(row[8]), "pmax": float(row[9]), "stepsum": float(row[10]),
-                "fresh": bool(fresh), "anc_k": anc_k, "anc_cent": anc_cent, "n": int(n),
-                "deadband": False}
+    def _new_pending(self, c: dict, i: int, k: int, fresh: bool, anc_k, anc_cent, n: int) -> dict:
+        h = float(c["height"][i])
+        main = not self._htyp or h >= MAIN_HEIGHT * self._htyp
+        pos = float(c["pos"][i])
+        return {"k": int(k), "d": int(c["d"][i]), "ref": pos, "sw": float(c["area"][i]),
+                "swp": 0.0, "last": pos, "h": h, "peak": int(c["peak"][i]),
+                "hasmain": bool(main), "start": int(c["start"][i]), "end": int(c["end"][i]),
+                "parts": 1, "npartial": int(bool(c["partial"][i])), "pmin": float(c["pmin"][i]),
+                "pmax": float(c["pmax"][i]), "stepsum": float(c["step"][i]), "fresh": bool(fresh),
+                "anc_k": anc_k, "anc_cent": anc_cent, "n": int(n), "deadband": False,
+                "repeat": bool(not fresh and n == 0), "offlat": False}
 
-    def _one(self, row: tuple) -> None:
-        """One candidate, in Python: used right after a reversal and at the very start."""
-        P, S, d = self._P, self._S, int(row[6])
-        main = not self._htyp or row[5] >= MAIN_HEIGHT * self._htyp
-        if (P is not None and S and d == P["d"] and d * (row[3] - P["last"]) < self._f * S
-                and d * (row[3] - P["ref"]) < MAX_SPAN * S):
-            P["hasmain"] = P["hasmain"] or bool(main)
-            P["sw"] += row[4]
-            P["swp"] += row[4] * (row[3] - P["ref"])
-            P["last"] = float(row[3])
-            if row[5] > P["h"]:
-                P["h"], P["peak"] = float(row[5]), int(row[2])
-            P["end"] = max(P["end"], int(row[1]))
+    def _one(self, c: dict, i: int) -> None:
+        """One candidate, in Python: right after a reversal, at the start, and in small batches.
+
+        Does exactly what _merge_block does for many candidates at once.
+        """
+        P, S, d = self._P, self._S, int(c["d"][i])
+        pos = float(c["pos"][i])
+        if (P is not None and S and d == P["d"] and d * (pos - P["last"]) < self._f * S
+                and d * (pos - P["ref"]) < MAX_SPAN * S):
+            area, h = float(c["area"][i]), float(c["height"][i])
+            P["hasmain"] = P["hasmain"] or (not self._htyp or h >= MAIN_HEIGHT * self._htyp)
+            P["sw"] += area
+            P["swp"] += area * (pos - P["ref"])
+            P["last"] = pos
+            if h > P["h"]:
+                P["h"], P["peak"] = h, int(c["peak"][i])
+            P["end"] = max(P["end"], int(c["end"][i]))
             P["parts"] += 1
-            P["npartial"] += int(bool(row[7]))
-            P["pmin"], P["pmax"] = min(P["pmin"], row[8]), max(P["pmax"], row[9])
-            P["stepsum"] += row[10]
+            P["npartial"] += int(bool(c["partial"][i]))
+            P["pmin"] = min(P["pmin"], float(c["pmin"][i]))
+            P["pmax"] = max(P["pmax"], float(c["pmax"][i]))
+            P["stepsum"] += float(c["step"][i])
             return
         was_fresh = P is not None and P["fresh"]
         weak = self._finalise_pending() if P is not None else None
         if P is None or (was_fresh and weak) or d != P["d"]:
-            k = self._first_after_reversal(row[3], d)
-            self._P = self._new_pending(row, k, True, None, None, 0)
-            if self._b is not None and self._lastrev is not None and self._S:
+            k, offl = self._first_after_reversal(pos, d)
+            self._P = self._new_pending(c, i, k, True, None, None, 0)
+            self._P["offlat"] = offl
+            if self._b is not None and self._lastrev is not None and S:
                 # still inside the dead band after the turn: the mount has not
                 # moved yet, this is the old blip's tail, not a crossing
-                travel = d * (row[3] - self._lastrev[1])
-                if travel < self._b - 0.1 * self._S:
+                if d * (pos - self._lastrev[1]) < self._b - 0.1 * S:
                     self._P["deadband"] = True
+                    if self._L is not None:
+                        self._P["k"] = self._L["k"]
             return
         # same run, same direction: number from the anchor (the last non-weak crossing)
-        if weak:
-            anc_k, anc_cent = P["anc_k"], P["anc_cent"]
-        else:
-            anc_k, anc_cent = P["k"], P["cent"]
+        anc_k, anc_cent = (P["anc_k"], P["anc_cent"]) if weak else (P["k"], P["cent"])
         if anc_cent is None:
             anc_k, anc_cent = P["k"], P["cent"]
-        n = max(1, int(np.rint(d * (row[3] - anc_cent) / S))) if S else 1
-        self._P = self._new_pending(row, anc_k + d * n, False, anc_k, anc_cent, n)
+        xs = d * (pos - anc_cent) / S if S else 1.0
+        n = max(0, int(np.rint(xs))) if S else 1
+        self._P = self._new_pending(c, i, anc_k + d * n, False, anc_k, anc_cent, n)
+        self._P["offlat"] = bool(S) and abs(xs - n) > OFF_LATTICE
 
-    def _merge_block(self, rows: list[tuple]) -> None:
+    def _merge_block(self, c: dict) -> None:
         """Vectorised: merge candidates into crossings and number them (one run, one direction)."""
         P, S, f = self._P, self._S, self._f
         d = P["d"]
-        cols = list(zip(*rows))
-        start = np.array(cols[0], np.int64)
-        end = np.array(cols[1], np.int64)
-        peak = np.array(cols[2], np.int64)
-        pos = np.array(cols[3], float)
-        area = np.array(cols[4], float)
-        h = np.array(cols[5], float)
-        dd = np.array(cols[6], np.int64)
-        partial = np.array(cols[7], bool)
-        pmin = np.array(cols[8], float)
-        pmax = np.array(cols[9], float)
-        stp = np.array(cols[10], float)
-        if (dd != d).any():       # a direction change without a reversal event: go slowly
-            for r in rows:
-                self._one(r)
+        pos, area, h = c["pos"], c["area"], c["height"]
+        if (c["d"] != d).any():       # a direction change without a reversal event: go slowly
+            for i in range(pos.size):
+                self._one(c, i)
             return
         main = h >= MAIN_HEIGHT * self._htyp if self._htyp else np.ones(h.size, bool)
         last = np.concatenate(([P["last"]], pos[:-1]))
@@ -944,18 +1143,18 @@ class StreamCounter:
         over = d * (pos - firsts[cid]) >= MAX_SPAN * S
         if over.any():
             new = new.copy()
-            for c in np.unique(cid[over]).tolist():
-                first = float(firsts[c])
-                for i in np.flatnonzero(cid == c).tolist():
+            for cc in np.unique(cid[over]).tolist():
+                first = float(firsts[cc])
+                for i in np.flatnonzero(cid == cc).tolist():
                     if d * (pos[i] - first) >= MAX_SPAN * S:
                         new[i] = True
                         first = float(pos[i])
             cid = np.cumsum(new)
+            firsts = np.concatenate(([P["ref"]], pos[new]))
         m = int(cid[-1])
         # sums per crossing, each referred to its own first candidate and added in
         # stream order (P's partial sums first), so the result is bit-identical
         # to merging one candidate at a time however the stream was chunked
-        firsts = np.concatenate(([P["ref"]], pos[new]))
         q = pos - firsts[cid]
         ids = np.concatenate(([0], cid))
 
@@ -966,50 +1165,69 @@ class StreamCounter:
         swp = seqsum(P["swp"], area * q)
         parts = np.bincount(cid, minlength=m + 1)
         parts[0] += P["parts"]
-        npart = np.bincount(cid, weights=partial.astype(float), minlength=m + 1)
+        npart = np.bincount(cid, weights=c["partial"].astype(float), minlength=m + 1)
         npart[0] += P["npartial"]
-        ssum = seqsum(P["stepsum"], stp)
-        cmin = np.full(m + 1, np.inf)
-        cmax = np.full(m + 1, -np.inf)
-        np.minimum.at(cmin, cid, pmin)
-        np.maximum.at(cmax, cid, pmax)
+        ssum = seqsum(P["stepsum"], c["step"])
+        # clusters are contiguous runs of candidates: reduce over their starts
+        present = np.flatnonzero(np.concatenate(([True], cid[1:] != cid[:-1])))
+        pid = cid[present]
+
+        def cred(ufunc, v, fill):
+            out = np.full(m + 1, fill)
+            out[pid] = ufunc.reduceat(v, present)
+            return out
+
+        cmin = cred(np.minimum, c["pmin"], np.inf)
+        cmax = cred(np.maximum, c["pmax"], -np.inf)
         cmin[0] = min(cmin[0], P["pmin"])
         cmax[0] = max(cmax[0], P["pmax"])
         cen = firsts + np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
         width = np.maximum(cmax - cmin, 0.0) + ssum / parts
-        hmax = np.full(m + 1, -np.inf)
-        np.maximum.at(hmax, cid, h)
+        hmax = cred(np.maximum, h, -np.inf)
         pk = np.full(m + 1, -1, np.int64)
         is_top = h == hmax[cid]
         top_c, top_i = np.unique(cid[is_top], return_index=True)
-        pk[top_c] = peak[np.flatnonzero(is_top)[top_i]]
+        pk[top_c] = c["peak"][np.flatnonzero(is_top)[top_i]]
         if P["h"] >= hmax[0]:
             hmax[0], pk[0] = P["h"], P["peak"]
-        cend = np.zeros(m + 1, np.int64)
-        np.maximum.at(cend, cid, end)
+        cend = cred(np.maximum, c["end"], 0)
         cend[0] = max(cend[0], P["end"])
-        if m == 0:
-            P.update(sw=float(sw[0]), swp=float(swp[0]), last=float(pos[-1]), h=float(hmax[0]),
-                     hasmain=P["hasmain"] or bool(main.any()),
-                     peak=int(pk[0]), end=int(cend[0]), parts=int(parts[0]),
-                     npartial=int(npart[0]), pmin=float(cmin[0]), pmax=float(cmax[0]),
-                     stepsum=float(ssum[0]))
-            return
-        newi = np.flatnonzero(new)
-        cstart = np.concatenate(([P["start"]], start[newi]))
         nmain = np.bincount(cid, weights=main.astype(float), minlength=m + 1)
         nmain[0] += P["hasmain"]
-        weak = self._weak(width[:m], hmax[:m], npart[:m] >= parts[:m]) | (nmain[:m] == 0)
-        weak[0] |= P["deadband"]
-        nw = ~weak
-        # anchor of cluster j (1..m): the last non-weak cluster before it (-1: P's own anchor)
-        anc = np.maximum.accumulate(np.where(nw, np.arange(m), -1))
+        if m == 0:
+            P.update(sw=float(sw[0]), swp=float(swp[0]), last=float(pos[-1]), h=float(hmax[0]),
+                     hasmain=bool(nmain[0] > 0), peak=int(pk[0]), end=int(cend[0]),
+                     parts=int(parts[0]), npartial=int(npart[0]), pmin=float(cmin[0]),
+                     pmax=float(cmax[0]), stepsum=float(ssum[0]))
+            return
+        newi = np.flatnonzero(new)
+        cstart = np.concatenate(([P["start"]], c["start"][newi]))
+        weak0 = self._weak(width[:m], npart[:m] >= parts[:m])
+        weak0[0] |= P["deadband"] or P["repeat"] or (P["offlat"] and not P["hasmain"])
+        minor = nmain[:m] == 0
         base_k, base_c = P["anc_k"], P["anc_cent"]
         if base_c is None:
             base_k, base_c = P["k"], float(cen[0])
-        anc_cent = np.where(anc >= 0, cen[np.maximum(anc, 0)], base_c)
-        first = pos[newi]
-        nstep = np.maximum(1, np.rint(d * (first - anc_cent) / S)).astype(np.int64)
+        # a crossing less than half a spacing past its anchor repeats the anchor's mode
+        # (and is weak); anchors depend on weakness, so solve it as a fixed point, which
+        # when reached is exactly what one-at-a-time processing gives
+        weak = weak0
+        for _ in range(6):
+            anc = np.maximum.accumulate(np.where(~weak, np.arange(m), -1))
+            anc_cent = np.where(anc >= 0, cen[np.maximum(anc, 0)], base_c)
+            xs = d * (pos[newi] - anc_cent) / S
+            nstep = np.maximum(0, np.rint(xs)).astype(np.int64)
+            offl = np.abs(xs - nstep) > OFF_LATTICE
+            w2 = weak0.copy()
+            w2[1:] |= (nstep[:m - 1] == 0) | (minor[1:] & offl[:m - 1])
+            if np.array_equal(w2, weak):
+                break
+            weak = w2
+        else:
+            for i in range(pos.size):         # no fixed point: do it one at a time
+                self._one(c, i)
+            return
+        nw = ~weak
         # k along the chain of non-weak clusters, then every cluster from its anchor
         kmap = np.zeros(m, np.int64)
         kmap[0] = P["k"]
@@ -1021,8 +1239,8 @@ class StreamCounter:
         ks = np.concatenate(([P["k"]], anc_k + d * nstep))
         # spacings between non-weak crossings, for the running spacing
         gcen = np.concatenate(([np.nan if P["anc_cent"] is None else P["anc_cent"]], anc_cent[:m - 1]))
-        gn = np.concatenate(([max(P["n"], 1)], nstep[:m - 1]))
-        gaps = d * (cen[:m] - gcen) / gn
+        gn = np.concatenate(([P["n"]], nstep[:m - 1]))
+        gaps = d * (cen[:m] - gcen) / np.maximum(gn, 1)
         if P["fresh"]:
             gaps[0] = np.nan
         good = nw & np.isfinite(gaps)
@@ -1031,16 +1249,16 @@ class StreamCounter:
                    sw[:m], parts[:m], weak)
         self._P = {"k": int(ks[m]), "d": d, "ref": float(firsts[m]), "sw": float(sw[m]),
                    "swp": float(swp[m]), "last": float(pos[-1]), "h": float(hmax[m]),
-                   "hasmain": bool(nmain[m] > 0),
-                   "peak": int(pk[m]), "start": int(cstart[m]), "end": int(cend[m]),
-                   "parts": int(parts[m]), "npartial": int(npart[m]), "pmin": float(cmin[m]),
-                   "pmax": float(cmax[m]), "stepsum": float(ssum[m]), "fresh": False,
-                   "anc_k": int(anc_k[m - 1]), "anc_cent": float(anc_cent[m - 1]),
-                   "n": int(nstep[m - 1]), "deadband": False}
+                   "hasmain": bool(nmain[m] > 0), "peak": int(pk[m]), "start": int(cstart[m]),
+                   "end": int(cend[m]), "parts": int(parts[m]), "npartial": int(npart[m]),
+                   "pmin": float(cmin[m]), "pmax": float(cmax[m]), "stepsum": float(ssum[m]),
+                   "fresh": False, "anc_k": int(anc_k[m - 1]), "anc_cent": float(anc_cent[m - 1]),
+                   "n": int(nstep[m - 1]), "deadband": False, "repeat": bool(nstep[m - 1] == 0),
+                   "offlat": bool(offl[m - 1])}
 
-    def _push_gaps(self, gaps: np.ndarray, ns: np.ndarray) -> None:
-        if gaps.size:
-            self._gaps.extend(gaps.tolist())
+    def _push_gaps(self, gaps, ns) -> None:
+        if len(gaps):
+            self._gaps.extend(np.asarray(gaps, float).tolist())
             self._ns.extend(np.asarray(ns).tolist())
             del self._gaps[:-GAP_MEMORY]
             del self._ns[:-GAP_MEMORY]
@@ -1055,44 +1273,49 @@ class StreamCounter:
         cen = P["ref"] + (P["swp"] / P["sw"] if P["sw"] > 0 else 0.0)
         P["cent"] = cen
         width = max(P["pmax"] - P["pmin"], 0.0) + P["stepsum"] / P["parts"]
-        weak = (bool(self._weak([width], [P["h"]], [P["npartial"] >= P["parts"]])[0])
-                or P["deadband"] or not P["hasmain"])
+        weak = (P["npartial"] >= P["parts"] or P["deadband"] or P["repeat"]
+                or (P["offlat"] and not P["hasmain"])
+                or (bool(self._wtyp) and width < WEAK_WIDTH * self._wtyp))
         if not weak and P["anc_cent"] is not None and not P["fresh"] and P["n"] >= 1:
-            self._push_gaps(np.array([P["d"] * (cen - P["anc_cent"]) / P["n"]]), np.array([P["n"]]))
-        self._emit(np.array([P["k"]]), np.array([P["peak"]]), np.array([P["start"]]),
-                   np.array([P["end"]]), np.array([cen]), P["d"], np.array([P["h"]]),
-                   np.array([width]), np.array([P["sw"]]), np.array([P["parts"]]),
-                   np.array([weak]))
+            self._push_gaps([P["d"] * (cen - P["anc_cent"]) / P["n"]], [P["n"]])
+        self._emit1(P["k"], P["peak"], P["start"], P["end"], cen, P["d"], P["h"], width,
+                    P["sw"], P["parts"], weak)
         return weak
+
+    def _emit1(self, k, peak, start, end, cen, d, h, w, area, parts, weak) -> None:
+        """One crossing out (the scalar twin of _emit)."""
+        self._out.append(Event("blip", int(peak), float(cen), int(d), int(k), float(h), float(w)))
+        self._table.add1(k, d, cen, h, w, not weak)
+        self._records.append((k, peak, start, end, cen, d, h, w, area, parts, bool(weak), self._run))
+        self._n_cross += 1
+        self._run_cur.append([[k], [cen], [h], int(d), [not weak]])
+        if not weak:
+            self._L = {"k": int(k), "cent": float(cen), "side": int(d), "h": float(h)}
+            self._wrec.append(float(w))
+            self._hrec.append(float(h))
+        elif self._L is None:
+            self._L = {"k": int(k), "cent": float(cen), "side": int(d), "h": float(h)}
+        self._est_cache = None
 
     def _emit(self, ks, peaks, starts, ends, cens, d, hs, ws, areas, parts, weak) -> None:
         n = len(ks)
-        if n == 0:
-            return
-        kl = np.asarray(ks, np.int64).tolist()
-        cl = np.asarray(cens, float).tolist()
-        hl = np.asarray(hs, float).tolist()
-        wl = np.asarray(ws, float).tolist()
-        weak = np.asarray(weak, bool)
-        self._out.extend(map(Event, ["blip"] * n, np.asarray(peaks, np.int64).tolist(), cl,
-                             [int(d)] * n, kl, hl, wl))
+        kl = ks.tolist()
+        cl = cens.tolist()
+        hl = hs.tolist()
+        wl = ws.tolist()
+        self._out.extend(map(Event, ["blip"] * n, peaks.tolist(), cl, [int(d)] * n, kl, hl, wl))
         self._table.add(ks, np.full(n, d), cens, hs, ws, ~weak)
-        self._records.append({"mode": np.asarray(ks, np.int64), "index": np.asarray(peaks, np.int64),
-                              "start": np.asarray(starts, np.int64), "end": np.asarray(ends, np.int64),
-                              "position_steps": np.asarray(cens, float), "direction": np.full(n, d),
-                              "height": np.asarray(hs, float), "width_steps": np.asarray(ws, float),
-                              "area": np.asarray(areas, float), "parts": np.asarray(parts, np.int64),
-                              "weak": weak.copy(), "run": np.full(n, self._run)})
+        self._records.append((ks, peaks, starts, ends, cens, np.full(n, d), hs, ws, areas, parts,
+                              weak.copy(), np.full(n, self._run)))
         self._n_cross += n
-        self._run_cur.append([kl, cl, hl, int(d), (~weak).tolist()])
-        strong = np.flatnonzero(~weak)
-        if strong.size:
-            i = int(strong[-1])
+        strong = ~weak
+        self._run_cur.append([kl, cl, hl, int(d), strong.tolist()])
+        si = np.flatnonzero(strong)
+        if si.size:
+            i = int(si[-1])
             self._L = {"k": kl[i], "cent": cl[i], "side": int(d), "h": hl[i]}
-            self._wrec.extend(np.asarray(ws, float)[strong].tolist())
-            self._hrec.extend(np.asarray(hs, float)[strong].tolist())
-            del self._wrec[:-GAP_MEMORY]
-            del self._hrec[:-GAP_MEMORY]
+            self._wrec.extend(ws[si[-GAP_MEMORY:]].tolist())
+            self._hrec.extend(hs[si[-GAP_MEMORY:]].tolist())
         elif self._L is None:
             self._L = {"k": kl[-1], "cent": cl[-1], "side": int(d), "h": hl[-1]}
         self._est_cache = None
@@ -1132,7 +1355,7 @@ class StreamCounter:
                if rel and k in pm and pm[k][1] == -d]
         return np.array(out)
 
-    def _fit_backlash(self, short: bool) -> float | None:
+    def _fit_backlash(self) -> float | None:
         """Backlash at the first reversal, from the signal alone.
 
         After a turn the mount stands still for b steps (the dead band), then
@@ -1159,12 +1382,15 @@ class StreamCounter:
         op, ov = op[oks], ov[oks]
         if np_.size < 8 or op.size < 8:
             return None
-        order = np.argsort(op)
+        order = np.argsort(op, kind="stable")
         op, ov = op[order], ov[order]
         bmax = min(float(travel.max()) - 0.5 * S, 3.0 * S)
         if bmax <= 0:
             return None
         grid = np.arange(0.0, bmax, max(S / 60.0, 0.1))
+        if np_.size > 4000:                   # many reads per step: thin them evenly
+            keep = np.linspace(0, np_.size - 1, 4000).astype(np.int64)
+            np_, nv = np_[keep], nv[keep]
         q = np_[None, :] + side * grid[:, None]
         q = np.where(side * (q - rpos) > 0, rpos, q)
         pred = np.interp(q, op, ov)
@@ -1178,26 +1404,28 @@ class StreamCounter:
         return float(grid[i])
 
     def _end_group_spacing(self) -> None:
-        """At a group end: running spacing and typical width/height from recent crossings."""
+        """At an event-group end: running spacing and typical width/height."""
         if self._wrec:
-            self._wtyp = float(np.median(self._wrec))
-            self._htyp = float(np.median(self._hrec))
+            del self._wrec[:-GAP_MEMORY]
+            del self._hrec[:-GAP_MEMORY]
+            self._wtyp = _median(self._wrec)
+            self._htyp = _median(self._hrec)
         if not self._gaps_new or not self._gaps:
             return
         self._gaps_new = False
-        g = np.array(self._gaps)
-        ns = np.array(self._ns)
-        if len(ns) >= 8 and np.median(ns) >= 2:
+        if len(self._ns) >= 8 and _median(self._ns) >= 2:
             # every step spans several spacings: the spacing estimate is a fraction too small
-            self._S = float(np.median(g * ns))
+            self._S = _median([g * n for g, n in zip(self._gaps, self._ns)])
             self._gaps, self._ns = [self._S], [1]
             return
-        self._S = float(np.median(g))
+        self._S = _median(self._gaps)
 
     def _trim(self) -> None:
         keep_from = self._done - 2
         if self._open >= 0:
             keep_from = min(keep_from, self._open - 2)
+        if self._pend:
+            keep_from = min(keep_from, int(self._pend[0][0][0]) - 2)
         if self._b is None and self._S is not None:
             # until the backlash is known, keep the last two runs for the fit
             run_from = self._revs[-2] if len(self._revs) >= 2 else 0
@@ -1218,7 +1446,9 @@ class StreamCounter:
             self._bbb.drop(bbkeep - self._bb0)
             self._bb0 = bbkeep
         if len(self._revs) > 64:
-            self._revs = self._revs[-64:]
+            first = int(self._pend[0][0][0]) if self._pend else self._done
+            keep = [r for r in self._revs[:-64] if r >= first - 1]
+            self._revs = keep + self._revs[-64:]
 
     # views of the buffers
     @property
@@ -1244,15 +1474,23 @@ class StreamCounter:
     # ------------------------------------------------------------- read-outs
     @property
     def modes(self) -> int:
-        """Distinct modes crossed so far (the crossing still open to merging included)."""
-        seen = set(np.flatnonzero(self._table.seen > 0) + self._table.off)
-        if self._P is not None:
-            seen.add(self._P["k"])
+        """Distinct modes crossed so far, by trusted crossings (the open one included).
+
+        A weak crossing alone (a glimpse during a kick, the cut-off flank at
+        a sweep end or a turn, a blip below a quarter of the typical height)
+        does not make a mode.
+        """
+        self._flush()
+        seen = set(np.flatnonzero(self._table.strong > 0) + self._table.off)
+        P = self._P
+        if P is not None and P["hasmain"] and not (P["deadband"] or P["repeat"]):
+            seen.add(P["k"])
         return len(seen)
 
     @property
     def crossings(self) -> int:
         """Every crossing counted, all passes (a split blip or a kick's repeat is one)."""
+        self._flush()
         return self._n_cross + (1 if self._P is not None else 0)
 
     @property
@@ -1262,6 +1500,7 @@ class StreamCounter:
 
     def mode_centres(self) -> dict[str, np.ndarray]:
         """Per-mode means: k, centre up / down (NaN if never crossed that way), counts, height, width."""
+        self._flush()
         t = self._table
         k = np.arange(t.seen.size) + t.off
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -1269,7 +1508,7 @@ class StreamCounter:
             dn = t.sum[1] / t.cnt[1]
             h = t.hsum / t.seen
             w = t.wsum / t.seen
-        sel = t.seen > 0
+        sel = t.strong > 0
         return {"mode": k[sel], "centre_up": up[sel], "centre_down": dn[sel],
                 "n_up": t.cnt[0][sel], "n_down": t.cnt[1][sel], "crossings": t.seen[sel],
                 "height": h[sel], "width_steps": w[sel]}
@@ -1280,6 +1519,7 @@ class StreamCounter:
         Cheap (one small least-squares fit over the modes, cached until the
         next crossing), so a dashboard can call it several times a second.
         """
+        self._flush()
         key = (self._n_cross, None if self._P is None else self._P["k"])
         if self._est_cache is not None and self._est_cache[0] == key:
             return dict(self._est_cache[1])
@@ -1296,15 +1536,23 @@ class StreamCounter:
 
     def crossing_table(self) -> dict[str, np.ndarray]:
         """Every finalised crossing since this counter was made (or restored), as columns."""
-        if not self._records:
-            return {f: np.zeros(0) for f in _RFIELDS}
-        return {f: np.concatenate([r[f] for r in self._records]) for f in _RFIELDS}
+        self._flush()
+        cols: list[list] = [[] for _ in _RFIELDS]
+        for rec in self._records:
+            for col, v in zip(cols, rec):
+                col.append(np.atleast_1d(v))
+        kinds = (np.int64, np.int64, np.int64, np.int64, float, np.int64, float, float, float,
+                 np.int64, bool, np.int64)
+        return {f: (np.concatenate(col).astype(k) if col else np.zeros(0, k))
+                for f, col, k in zip(_RFIELDS, cols, kinds)}
 
     # ---------------------------------------------------------------- state
     _STATE_ARRAYS = ("_x", "_p", "_d", "_bm", "_bb")
     _STATE_PLAIN = ("_t0", "_n", "_done", "_last_dir", "_last_in", "_bm0", "_nb", "_bb0",
-                    "_sigma", "_floor", "_ema", "_gacc", "_gneg", "_rmax", "_gmax", "_open", "_open_trig",
-                    "_revs", "_finished", "_done_events", "_S", "_phase", "_held", "_lastrev",
+                    "_sigma", "_floor", "_ema", "_gcnt", "_gneg", "_rmax", "_gmax", "_open",
+                    "_open_trig", "_revs", "_finished", "_final_scan", "_ev_done", "_pend", "_npend",
+                    "_pend_revs", "_S", "_phase",
+                    "_held", "_lastrev", "_init_checked",
                     "_P", "_L", "_gaps", "_ns", "_gaps_new", "_wtyp", "_htyp", "_wrec", "_hrec",
                     "_b", "_bpairs", "_run",
                     "_run_cur", "_run_prev", "_n_cross")
@@ -1338,7 +1586,17 @@ class StreamCounter:
         c._bbb = _Buf(np.float64, state["_bb"])
         for name in cls._STATE_PLAIN:
             setattr(c, name, state[name])
-        c._held = [[kind, tuple(obj)] for kind, obj in c._held]
+        kinds = {"start": np.int64, "end": np.int64, "peak": np.int64, "d": np.int64,
+                 "partial": bool}
+        c._held = [[kind, {f: np.array(v, kinds.get(f, np.float64)) for f, v in obj.items()}
+                    if kind == "c" else (tuple(obj) if kind == "r" else obj)]
+                   for kind, obj in c._held]
+        if c._lastrev is not None:
+            c._lastrev = tuple(c._lastrev)
+        c._gneg = [np.array(v, np.float64) for v in c._gneg]
+        c._pend = [(np.array(s, np.int64), np.array(e, np.int64), np.array(f, np.float64))
+                   for s, e, f in c._pend]
+        c._pend_revs = [tuple(r) for r in c._pend_revs]
         c._table = _ModeTable.from_state(state["_table"])
         c._out = [Event(**e) for e in state["_pending_events"]]
         return c
