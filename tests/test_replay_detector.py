@@ -133,3 +133,30 @@ def test_bad_logs_and_keys(tmp_path):
     assert check_replay_settings({"log": str(tmp_path / "missing.db")})[0][0] == "log"
     assert check_replay_settings({"log": str(p), "backlash_steps": -1.0})[0][0] == "backlash_steps"
     assert schedule.recorded_count(load_rig(None, BACKLASH)["sweep"]) == 8001
+
+
+def test_rig_file_with_replay_drivers_runs_through_the_registry(live, tmp_path, monkeypatch):
+    """`[stage] driver = "replay"`, `[detector] driver = "replay"`, `log = ...`: loader, registry, engine.
+
+    The entries are the ones drivers/registry.py is to carry; added here only
+    if it does not have them yet.
+    """
+    from daq.rig import parse_rig
+    from drivers import registry
+    from sims import replay_detector as rd
+    monkeypatch.setitem(registry.STAGE_DRIVERS, "replay", registry.STAGE_DRIVERS.get(
+        "replay", registry.DriverEntry(rd.REPLAY_STAGE_KEYS, rd.open_replay_stage)))
+    monkeypatch.setitem(registry.DETECTOR_DRIVERS, "replay", registry.DETECTOR_DRIVERS.get(
+        "replay", registry.DriverEntry(rd.REPLAY_DETECTOR_KEYS, rd.open_replay_detector,
+                                       rd.check_replay_settings)))
+    _, path, counter_live, truth = live
+    text = (f'[stage]\ndriver = "replay"\nmin_steps = 0\nmax_steps = 20000\n'
+            f'[detector]\ndriver = "replay"\nlog = "{path}"\n'
+            f'[sweep]\nstart = 1000\nstop = 5000\nstep = 1\npasses = 2\n')
+    rig = parse_rig(text, "replay.toml")
+    stage, detector, bench = registry.open_devices(rig.sections)
+    assert bench is None and stage.identify() == detector.identify()
+    counter = _run(rig, stage, detector, tmp_path / "via_rig.db")
+    assert counter.modes == counter_live.modes
+    with pytest.raises(DeviceError, match="no such file"):
+        registry.open_devices(parse_rig(text.replace(str(path), str(tmp_path / "gone.db")), "replay.toml").sections)
