@@ -17,6 +17,7 @@ from typing import Any, Iterable
 
 import numpy as np
 
+from daq.cmd_modes import COLUMNS as MODE_COLUMNS
 from daq.runlog import RunLog
 
 SAMPLE_COLUMNS = ("time_s", "position", "direction", "pass", "intensity", "spread")
@@ -82,13 +83,9 @@ def write_events_csv(log: RunLog, path: Path) -> int:
     return len(events)
 
 
-def _table_rows(table: Any) -> tuple[list[str], list[list[Any]]]:
-    """(header, rows) from a list of flat dicts or a dict of equal-length columns."""
-    if isinstance(table, dict):
-        header = list(table)
-        n = max((len(v) for v in table.values()), default=0)
-        return header, [[table[k][i] if i < len(table[k]) else None for k in header] for i in range(n)]
-    header: list[str] = []
+def _table_rows(table: list[dict], first: tuple[str, ...] = ()) -> tuple[list[str], list[list[Any]]]:
+    """(header, rows) from a list of flat dicts: the ``first`` columns, then any others."""
+    header = list(first)
     for row in table or []:
         header.extend(k for k in row if k not in header)
     return header, [[row.get(k) for k in header] for row in table or []]
@@ -104,9 +101,9 @@ def _cell(v: Any) -> Any:
     return v
 
 
-def write_table_csv(table: Any, path: Path) -> int:
-    """Any analysis table (the mode map) as CSV; returns the number of rows."""
-    header, rows = _table_rows(table)
+def write_table_csv(table: list[dict], path: Path, first: tuple[str, ...] = ()) -> int:
+    """An analysis table (the mode map) as CSV; returns the number of rows."""
+    header, rows = _table_rows(table, first)
     with open(path, "w", encoding="utf-8", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(header)
@@ -122,5 +119,6 @@ def export_csv(log: RunLog, out_dir: Path, mode_map: Any) -> dict[str, tuple[Pat
     return {
         "samples": (files["samples"], write_samples_csv(log, files["samples"])),
         "events": (files["events"], write_events_csv(log, files["events"])),
-        "modes": (files["modes"], write_table_csv(mode_map, files["modes"])),
+        # The columns of `modetick modes --csv`, so one reader takes both files.
+        "modes": (files["modes"], write_table_csv(mode_map, files["modes"], MODE_COLUMNS)),
     }

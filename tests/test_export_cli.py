@@ -65,6 +65,9 @@ def test_export_files_and_round_trip(capsys, exported):
     assert len(modes) == len(from_log["mode_map"]) == from_log["modes"]
     assert [int(r["mode"]) for r in modes] == [m["mode"] for m in from_log["mode_map"]]
     assert [float(r["centre_steps"]) for r in modes] == [m["centre_steps"] for m in from_log["mode_map"]]
+    # The same columns as `modetick modes --csv`: its reader takes the export.
+    from daq.cmd_modes import read_csv
+    assert read_csv(out / "modes.csv") == from_log["mode_map"]
 
     # analyze reads the export back and finds the same modes.
     code, stdout, _ = cli(capsys, "analyze", out / "samples.csv", "--json")
