@@ -31,6 +31,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="python -m sims.emulators", description=__doc__.split("\n\n")[0])
     p.add_argument("--rig", help="rig file whose [sim], [stage] and [sweep] sections set up the physics "
                                  "(default: configs/sim.toml)")
+    p.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                   help="override a rig-file key, as for modetick (e.g. the sweep range the truth is for)")
     p.add_argument("--physics", help="module:factory building the physics from the rig sections")
     p.add_argument("--stepper", action="store_true", help="ASCII stepper controller (default protocol)")
     p.add_argument("--stepper-protocol", metavar="JSON|@FILE",
@@ -48,14 +50,14 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def _rig_sections(path: str | None) -> dict:
+def _rig_sections(path: str | None, overrides: list[str]) -> dict:
     from daq.rig import load_rig
-    return load_rig(path).sections
+    return load_rig(path, overrides).sections
 
 
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
-    physics = bench_from_rig(_rig_sections(args.rig), args.physics)
+    physics = bench_from_rig(_rig_sections(args.rig, args.set), args.physics)
     ports, info = {}, {}
     if args.stepper or args.stepper_protocol:
         proto = StepperProtocol()
