@@ -4,6 +4,8 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
+
 from daq.errors import fail
 from daq.rig import RigError, load_rig, parse_rig
 from daq.runlog import LogError, RunLog
@@ -28,7 +30,7 @@ def load_input(path: str, config: str | None, overrides: list[str]):
         head = fh.read(16)
     if head.startswith(b"SQLite format 3"):
         log = RunLog.open(p)
-        rig = load_rig(config, overrides) if config else _log_rig(log, overrides)
+        rig = load_rig(config, overrides) if config else log_rig(log, overrides)
         s = log.read_samples()
         cols = (s.position_steps, s.value, s.direction, s.pass_index)
         return cols, rig.sections, log
@@ -43,26 +45,38 @@ def load_input(path: str, config: str | None, overrides: list[str]):
         rig = parse_rig("[sweep]\nstart = 0\nstop = 1\nstep = 1\n", "<no rig file>", overrides)
         for k in ("deg_per_step", "angle_at_zero_deg"):
             rig.sections["stage"][k] = None
-    cols = (trace["position"], trace["intensity"], None, None)
+    # A CSV written by `modetick export` (or by hand) may carry the commanded
+    # direction and pass; they beat guessing from the positions.
+    cols = (trace["position"], trace["intensity"], _int_col(trace, "direction"), _int_col(trace, "pass"))
     return cols, (rig.sections if rig else None), None
 
 
-def _log_rig(log: RunLog, overrides: list[str]):
+def _int_col(trace: dict, name: str):
+    col = trace.get(name)
+    if col is None or not np.isfinite(col).all():
+        return None
+    if name == "direction" and not np.isin(col, (-1, 1)).all():
+        raise LogError(f"CSV column direction must hold only +1 and -1")
+    return col.astype(np.int64)
+
+
+def log_rig(log: RunLog, overrides: list[str]):
     rig = log.rig()
     if overrides:
         rig = parse_rig(rig.text, rig.source, rig.overrides + overrides)
     return rig
 
 
-def run(args) -> int:
+def analyze_file(path: str, config: str | None = None, overrides: list[str] | None = None) -> dict:
+    """The analysis of a log or CSV as `analyze --json` prints it.
+
+    Raises RigError / LogError (one line each) for unusable input.
+    """
     from analysis.pipeline import analyze_trace
     from daq.summary import _clean
-    try:
-        (pos, val, direction, pass_index), sections, log = load_input(args.file, args.config, args.set)
-    except (RigError, LogError) as exc:
-        return fail(exc, 2)
+    (pos, val, direction, pass_index), sections, log = load_input(path, config, overrides or [])
     if len(val) == 0:
-        return fail(f"{args.file}: holds no samples", 2)
+        raise LogError(f"{path}: holds no samples")
     result = analyze_trace(pos, val, direction=direction, pass_index=pass_index, sections=sections,
                            counter_settings=(sections or {}).get("counter"))
     result = _clean(dict(result))
@@ -71,6 +85,14 @@ def run(args) -> int:
         result["status"] = log.meta("status")
         result["log"] = str(log.path)
         log.close()
+    return result
+
+
+def run(args) -> int:
+    try:
+        result = analyze_file(args.file, args.config, args.set)
+    except (RigError, LogError, ValueError) as exc:
+        return fail(exc, 2)
     if args.json:
         print(json.dumps(result))
     else:

@@ -72,13 +72,13 @@ def open_analyzed(path: str, config: str | None = None, overrides: list[str] | N
     Raises LogError or RigError with a one-line message for bad input.
     """
     from analysis.pipeline import analyze_trace, count
-    from daq.cmd_analyze import _log_rig
+    from daq.cmd_analyze import log_rig
     from daq.rig import load_rig
     from daq.summary import _clean
 
     log = RunLog.open(path)
     try:
-        rig = load_rig(config, overrides or []) if config else _log_rig(log, overrides or [])
+        rig = load_rig(config, overrides or []) if config else log_rig(log, overrides or [])
         s = log.read_samples()
         if len(s) == 0:
             raise LogError(f"log {path}: holds no samples")
