@@ -144,7 +144,10 @@ def run(args) -> int:
     result["msamples_per_s"] = round(player.samples_done / player.wall_s / 1e6, 2) if player.wall_s > 0 else None
     if args.set:
         result["settings"] = list(args.set)
-    result["changes"] = changes(log.summary(), Blips.from_log(log), result, player.blips)
+    logged = log.summary()
+    if logged and "truth" in logged:
+        result["truth"] = logged["truth"]   # the simulator's answer for these very samples
+    result["changes"] = changes(logged, Blips.from_log(log), result, player.blips)
     if out_log is not None:
         out_log.finish(status, result, "" if status == "finished" else f"replay {status}")
         out_log.close()

@@ -46,6 +46,7 @@ def test_fast_replay_reports_the_live_count(narrow):
     assert ch["identical"] and ch["blips_lost"] == ch["blips_gained"] == 0
     assert ch["modes_lost"] == ch["modes_gained"] == []
     # The count itself against the simulator's truth (its detectability rule, sims/truth.py).
+    assert out["truth"] == live["truth"]
     assert abs(out["modes"] - live["truth"]["modes"]) <= 1
 
 
