@@ -100,7 +100,7 @@ def run(args) -> int:
         return fail(exc, 2)
 
     speed = None if args.fast else (args.speed or 1.0)
-    state = LiveState(log_path=str(log.path))
+    state = LiveState(log_path=str(log.path), title="modetick replay")
     state.status = "replaying " + ("fast" if speed is None else f"x{speed:g}")
     try:
         from daq.cmd_sweep import _calibration_view

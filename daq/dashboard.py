@@ -145,7 +145,7 @@ def render(st: LiveState, width: int = 80) -> Panel:
         ev.append("PAUSED: press p to go on\n", style="bold yellow")
 
     footer = Text(f"log {st.log_path}   p pause/resume · q stop", style=LABEL_STYLE)
-    title = f"modetick sweep · {st.status}"
+    title = f"{st.title} · {st.status}"
     return Panel(Group(top, Text(""), Text(trace, style=TRACE_STYLE), Text(marker, style=BLIP_STYLE),
                        ev, footer), title=title, title_align="left",
                  border_style="grey50", width=min(width, 120))

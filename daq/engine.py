@@ -10,8 +10,11 @@ rate, and a killed process loses at most one flush interval of samples.
 from __future__ import annotations
 
 import collections
+import math
+import queue
 import shutil
 import signal
+import sys
 import threading
 import time
 from dataclasses import dataclass, field
@@ -20,9 +23,10 @@ from typing import Any, Callable
 import numpy as np
 
 from daq import schedule
-from drivers.base import DeviceError
+from drivers.base import DeviceError, Reading
 
-FLUSH_S = 0.25
+FLUSH_S = 0.25        # chunks go to the counter (and the dashboard) this often
+COMMIT_S = 1.0        # ... and are committed to the log with the counter state this often
 FLUSH_SAMPLES = 4096
 RECENT = 900          # readings kept for the dashboard's strip chart
 STALL_READS = 500     # identical readings in a row before the detector is called stuck
@@ -36,6 +40,7 @@ _HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
 class LiveState:
     """What the dashboard shows; written by the engine, read by the renderer."""
 
+    title: str = "modetick sweep"
     log_path: str = ""
     total_samples: int = 0
     passes: int = 1
@@ -64,6 +69,47 @@ class StopRequested(Exception):
     pass
 
 
+class _Writer:
+    """One thread that counts and logs the chunks the loop hands over, in order.
+
+    A failure in it (a full disk, a broken file) is kept and raised in the
+    loop's thread at the next hand-over, so it stops the run like a device
+    fault would.
+    """
+
+    def __init__(self, write):
+        self._write = write
+        self._q: queue.Queue = queue.Queue(maxsize=16)
+        self.error: BaseException | None = None
+        self._thread = threading.Thread(target=self._loop, name="modetick-writer", daemon=True)
+        self._thread.start()
+
+    def _loop(self) -> None:
+        while True:
+            item = self._q.get()
+            if item is None:
+                return
+            if self.error is None:
+                try:
+                    self._write(item)
+                except BaseException as exc:  # noqa: BLE001 - handed to the loop's thread
+                    self.error = exc
+
+    def put(self, item) -> None:
+        self.raise_error()
+        self._q.put(item)
+
+    def raise_error(self) -> None:
+        if self.error is not None:
+            err, self.error = self.error, None
+            raise err
+
+    def close(self) -> None:
+        """Write everything handed over, then stop the thread."""
+        self._q.put(None)
+        self._thread.join()
+
+
 class Engine:
     """Runs one sweep schedule against opened devices."""
 
@@ -80,6 +126,9 @@ class Engine:
         self._aux: dict[str, list] = {}
         self._pending_events: list[tuple] = []
         self._warned: set[str] = set()
+        self._n_written = log.n_samples   # samples handed to the writer so far (all runs of this log)
+        self._writer: _Writer | None = None
+        self._next_commit = 0.0
         # Scan mode, resuming: the pass and position of the last logged sample.
         self._resume_pass, self._resume_pos = 0, None
         self._last_value = None
@@ -88,7 +137,7 @@ class Engine:
     # -- events -------------------------------------------------------------
     def note(self, kind: str, detail: str, pos: float | None = None) -> None:
         """Record a non-blip event (pass, warning, fault, status)."""
-        i = self.log.n_samples + len(self._buf["val"])
+        i = self._n_written + len(self._buf["val"])
         self._pending_events.append((i, self.state.t_s, kind, pos, None, None, None, None, detail))
         self.state.events.append((kind, detail))
 
@@ -103,20 +152,30 @@ class Engine:
         st.samples = self.log.n_samples
         self._t_start = time.monotonic()
         self._next_flush = self._t_start + FLUSH_S
+        self._writer = _Writer(self._write)
+        status = "finished"
+        switch = sys.getswitchinterval()
+        if sweep["mode"] == "scan":
+            sys.setswitchinterval(0.0005)   # the writer must not hold the reader off for long
         try:
-            if sweep["mode"] == "scan":
-                self._run_scan(skip_recorded)
-            else:
-                self._run_steps(skip_recorded)
-        except StopRequested:
+            try:
+                if sweep["mode"] == "scan":
+                    self._run_scan(skip_recorded)
+                else:
+                    self._run_steps(skip_recorded)
+            except StopRequested:
+                status = "stopped"
+            except BaseException:
+                self.flush()   # keep every sample up to the fault or interrupt
+                raise
             self.flush()
-            return "stopped"
-        except BaseException:
-            self.flush()   # keep every sample up to the fault or interrupt
-            raise
-        self.flush()
-        st.t_run_s = time.monotonic() - self._t_start
-        return "finished"
+        finally:
+            writer, self._writer = self._writer, None
+            writer.close()     # every handed-over chunk is in the log before we return
+            sys.setswitchinterval(switch)
+            st.t_run_s = time.monotonic() - self._t_start
+        writer.raise_error()
+        return status
 
     def _between_steps(self) -> None:
         if self.stop_flag():
@@ -189,6 +248,7 @@ class Engine:
             stage.move_to(begin)
             stage.start_scan(end, speed)
             t_q, p_q, moving = clock(), stage.position_steps(), True
+            acc_pos, acc = None, []
             while True:
                 self._between_steps()
                 r = read()
@@ -196,11 +256,20 @@ class Engine:
                 if now - t_q >= SCAN_POLL_S or not moving:
                     p_q, t_q, moving = stage.position_steps(), now, stage.is_moving()
                 pos = p_q + d * speed * (now - t_q) if moving else p_q
-                pos = min(max(pos, min(begin, end)), max(begin, end))
-                self.state.position_steps = int(round(pos))
-                self._take(int(round(pos)), d, p, r)
+                pos = int(round(min(max(pos, min(begin, end)), max(begin, end))))
+                self.state.position_steps = pos
+                # Readings are binned to one sample per step (mean and spread), so the
+                # log and the counter see the same sampling as a stepped sweep
+                # whatever the detector's rate.
+                if pos != acc_pos and acc:
+                    self._take(acc_pos, d, p, _mean_reading(acc))
+                    acc = []
+                acc_pos = pos
+                acc.append(r)
                 if not moving:
                     break
+            if acc:
+                self._take(acc_pos, d, p, _mean_reading(acc))
             self._check_position(end)
 
     def _clamp(self, target: int) -> int:
@@ -228,7 +297,7 @@ class Engine:
                 self._warn_once("saturated", "detector saturated: readings are clipped "
                                              "(lower the gain or the exposure)", pos)
             self._add_aux(r.aux, len(vals))
-        self.state.recent.append((self.log.n_samples + len(vals) - 1, r.value))
+        self.state.recent.append((self._n_written + len(vals) - 1, r.value))
         if r.value == self._last_value:
             self._same_count += 1
             if self._same_count == STALL_READS:
@@ -287,36 +356,56 @@ class Engine:
         self.note("status", "resumed")
 
     def flush(self) -> None:
-        """Count and log the buffered chunk in one transaction.
+        """Hand the buffered chunk to the writer: counted and logged in one transaction.
 
-        SIGINT/SIGTERM are held back meanwhile, so a second Ctrl-C can never
-        land between writing a block and clearing the buffer (which would log
-        the block twice) or between the samples and the counter state.
+        Only the buffer swap happens here (SIGINT/SIGTERM held back meanwhile,
+        so a second Ctrl-C cannot split it and log a chunk twice); the
+        counting, the SQLite write and the counter-state snapshot run in the
+        writer thread, so the step or scan loop is never held up by them.
+        Without a running writer (before run() or after it) the chunk is
+        written here.
         """
         in_main = threading.current_thread() is threading.main_thread()
         if in_main:
             signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
         try:
-            self._flush()
+            chunk = self._swap()
         finally:
             if in_main:
                 signal.pthread_sigmask(signal.SIG_UNBLOCK, _HELD_SIGNALS)
+        if self._writer is not None:
+            self._writer.put(chunk)
+        else:
+            self._write(chunk)
 
-    def _flush(self) -> None:
-        buf, st = self._buf, self.state
+    def _swap(self) -> tuple:
+        buf = self._buf
         n = len(buf["val"])
+        chunk = None
         if n:
-            first_i = self.log.n_samples
-            pos = np.asarray(buf["pos"], dtype=np.int64)
-            direction = np.asarray(buf["dir"], dtype=np.int64)
-            value = np.asarray(buf["val"], dtype=np.float64)
             aux = None
             if self._aux:
                 aux = {k: (v + [float("nan")] * (n - len(v))) for k, v in self._aux.items()}
-            t_arr = np.asarray(buf["t"], dtype=np.float64)
+            chunk = (self._n_written, np.asarray(buf["t"], dtype=np.float64),
+                     np.asarray(buf["pos"], dtype=np.int64), np.asarray(buf["dir"], dtype=np.int64),
+                     np.asarray(buf["pass"], dtype=np.int64), np.asarray(buf["val"], dtype=np.float64),
+                     np.asarray(buf["spr"], dtype=np.float64), aux)
+            self._n_written += n
+            for k in buf:
+                buf[k].clear()
+            self._aux.clear()
+        events, self._pending_events = self._pending_events, []
+        return chunk, events
+
+    def _write(self, item: tuple) -> None:
+        """Count and log one chunk (writer thread, or the caller when none runs)."""
+        chunk, notes = item
+        st = self.state
+        if chunk is not None:
+            first_i, t_arr, pos, direction, pass_index, value, spread, aux = chunk
+            n = value.size
             events = self.counter.feed(pos, direction, value)
-            self.log.append_samples(t_arr, pos, direction, np.asarray(buf["pass"]), value,
-                                    np.asarray(buf["spr"], dtype=np.float64), aux, commit=False)
+            self.log.append_samples(t_arr, pos, direction, pass_index, value, spread, aux, commit=False)
             rows = []
             for ev in events:
                 t_ev = float(t_arr[min(max(ev.index - first_i, 0), n - 1)])
@@ -325,21 +414,33 @@ class Engine:
                 if ev.kind == "blip":
                     st.recent_blips.append(ev.index)
             self.log.append_events(rows)
-            for k in buf:
-                buf[k].clear()
-            self._aux.clear()
             st.samples = self.log.n_samples
             st.samples_done_this_run += n
             st.estimate = self.counter.estimate()
-        self.log.append_events(self._pending_events)
-        self._pending_events.clear()
-        self.log.set_meta(counter_state=_json_state(self.counter))  # commits the transaction
-        self._check_disk()
+        self.log.append_events(notes)
+        now = time.monotonic()
+        if now >= self._next_commit or chunk is None or self._writer is None:
+            # Samples, events and the counter state that has seen exactly them, in one
+            # transaction: a killed run loses at most COMMIT_S and resumes consistently.
+            self.log.set_meta(counter_state=_json_state(self.counter))  # commits
+            self._next_commit = now + COMMIT_S
+            self._check_disk()
 
     def _check_disk(self) -> None:
         free = shutil.disk_usage(self.log.path.parent).free
         if free < MIN_FREE_BYTES:
             raise DeviceError(f"disk: only {free // 1_000_000} MB free beside {self.log.path}; stopped to keep the log intact")
+
+
+def _mean_reading(readings: list) -> Reading:
+    """Mean of several readings, their standard deviation as the spread."""
+    n = len(readings)
+    if n == 1:
+        return readings[0]
+    vals = [r.value for r in readings]
+    mean = sum(vals) / n
+    spread = math.sqrt(sum((v - mean) ** 2 for v in vals) / (n - 1))
+    return Reading(mean, spread, dict(readings[-1].aux))
 
 
 def _json_state(counter) -> str:
