@@ -203,3 +203,17 @@ def test_cable_pulled_mid_sweep_stops_with_one_line_and_keeps_the_log(tmp_path):
     assert log.meta("status") == "faulted" and "cable pulled" in log.meta("reason")
     assert 500 < log.n_samples < 2773       # every sample up to the fault was kept
     log.close()
+
+
+def test_continuous_scan_through_the_real_drivers(tmp_path):
+    # [sweep] mode = "scan": one move per pass at constant speed (the rig's speed_command),
+    # the meter read as fast as it answers, positions from the controller's reports.
+    short = "sweep.stop=1710"
+    with EmulatorProcess("--rig", str(EMULATED), "--set", short, "--stepper", "--meter") as emu:
+        r = run_sweep(EMULATED, tmp_path / "run.db", f"stage.port={emu.info['stepper']}",
+                      f"detector.resource={emu.info['meter_resource']}", short,
+                      "sweep.mode=scan", "sweep.speed_steps_per_s=2000")
+    assert r.returncode == 0, r.stderr
+    summary = json.loads(r.stdout)
+    assert summary["modes"] == emu.info["truth"]["modes"] >= 15
+    assert summary["spacing_steps"] == pytest.approx(emu.info["truth"]["spacing_steps"], rel=0.005)

@@ -6,6 +6,8 @@ sees the same sequence of positions a real actuator goes through.
 """
 from __future__ import annotations
 
+import threading
+
 
 class Motion:
     def __init__(self, physics, start_steps: int | None = None, min_steps: int = -1_000_000,
@@ -18,8 +20,15 @@ class Motion:
         self.position = float(start_steps)      # motor position in steps (commanded frame)
         self.target = start_steps
         self._from, self._t0, self._dur = self.position, 0.0, 0.0
+        self._now = 0.0
         self._physics_at = start_steps
         self.moves = self.stops = self.stalls = 0
+        # The controller thread and, through the physics, the meter threads advance
+        # the motion; one lock keeps each update whole.
+        self._lock = threading.RLock()
+        add_mover = getattr(physics, "add_mover", None)
+        if add_mover is not None:
+            add_mover(self.tick)
         if physics.position_steps() != start_steps:
             physics.move_to(start_steps)
 
@@ -30,6 +39,12 @@ class Motion:
         return self.steps() != self.target
 
     def tick(self, now: float) -> None:
+        with self._lock:
+            self._tick(now)
+
+    def _tick(self, now: float) -> None:
+        # Threads pass their own clock readings; time only runs forward here.
+        now = self._now = max(now, self._now)
         if not self.busy():
             return
         frac = 1.0 if self._dur <= 0 else min(1.0, (now - self._t0) / self._dur)
@@ -53,15 +68,17 @@ class Motion:
 
     def start(self, target_steps: int, speed_steps_per_s: float, now: float) -> None:
         """Begin a move; a target past a limit switch stops at the switch."""
-        self.tick(now)
-        self._from, self._t0 = self.position, now
-        self.target = max(self.min_steps, min(self.max_steps, int(target_steps)))
-        self._dur = abs(self.target - self.position) / speed_steps_per_s
-        self.moves += 1
-        self.tick(now)
+        with self._lock:
+            self._tick(now)
+            self._from, self._t0 = self.position, self._now
+            self.target = max(self.min_steps, min(self.max_steps, int(target_steps)))
+            self._dur = abs(self.target - self.position) / speed_steps_per_s
+            self.moves += 1
+            self._tick(now)
 
     def stop(self) -> None:
-        self.target = self.steps()
-        self.position = float(self.target)
-        self._walk_to(self.target)
-        self.stops += 1
+        with self._lock:
+            self.target = self.steps()
+            self.position = float(self.target)
+            self._walk_to(self.target)
+            self.stops += 1

@@ -9,15 +9,31 @@ from __future__ import annotations
 
 import importlib
 import threading
-from typing import Any
+import time
+from typing import Any, Callable
 
 
 class LockedPhysics:
-    """Thread-safe view of a bench: move_to, position_steps, read_value, render_frame, truth."""
+    """Thread-safe view of a bench: move_to, position_steps, read_value, render_frame, truth.
+
+    Motors register with ``add_mover``; before each reading they are brought
+    up to the present moment, so a meter read mid-move sees the mount where a
+    continuously turning motor would have put it, not where the controller's
+    thread last looked.
+    """
 
     def __init__(self, bench: Any):
         self.bench = bench
         self._lock = threading.Lock()
+        self._movers: list[Callable[[float], None]] = []
+
+    def add_mover(self, advance: Callable[[float], None]) -> None:
+        self._movers.append(advance)
+
+    def _catch_up(self) -> None:
+        now = time.monotonic()
+        for advance in self._movers:   # outside the lock: a mover calls move_to
+            advance(now)
 
     def move_to(self, target_steps: int) -> None:
         with self._lock:
@@ -28,10 +44,12 @@ class LockedPhysics:
             return self.bench.position_steps()
 
     def read_value(self) -> float:
+        self._catch_up()
         with self._lock:
             return float(self.bench.read_value())
 
     def render_frame(self):
+        self._catch_up()
         with self._lock:
             return self.bench.render_frame()
 
