@@ -69,6 +69,14 @@ DETECTOR_DRIVERS: dict[str, DriverEntry] = {
 }
 
 
+# Replay through the simulator: a logged sweep served back by mechanical position.
+from sims import replay_detector as _replay  # noqa: E402
+
+STAGE_DRIVERS["replay"] = DriverEntry(_replay.REPLAY_STAGE_KEYS, _replay.open_replay_stage)
+DETECTOR_DRIVERS["replay"] = DriverEntry(_replay.REPLAY_DETECTOR_KEYS, _replay.open_replay_detector,
+                                         _replay.check_replay_settings)
+
+
 def _table(section: str) -> dict[str, DriverEntry]:
     return STAGE_DRIVERS if section == "stage" else DETECTOR_DRIVERS
 
