@@ -82,3 +82,10 @@ def test_broken_rig_file_exits_2_with_one_line_from_cli(tmp_path):
     assert 1 <= len(lines) <= 3
     assert "broken.toml" in lines[0] and "Traceback" not in out.stderr
     assert out.stdout == ""
+
+
+@pytest.mark.parametrize("path", sorted((ROOT / "configs").glob("*.toml")), ids=lambda p: p.name)
+def test_every_example_rig_file_is_valid(path):
+    # Each shipped example must pass the loader as it is (ports and files are only opened later).
+    rig = load_rig(path)
+    assert rig["sweep"]["step"] > 0
