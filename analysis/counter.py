@@ -63,7 +63,8 @@ FIT_TRAVEL = 4.0     # spacings travelled after the first reversal before the ba
 WEAK_WIDTH = 0.3     # a crossing narrower than this fraction of the typical width is
                      # "weak": numbered, never the anchor of the numbering, no mode alone
 MAIN_HEIGHT = 0.35   # ... and so is one lower than this fraction of the typical height
-OFF_LATTICE = 0.25   # ... that lies more than this many spacings off the mode lattice
+OFF_LATTICE = 0.25   # ... that lies more than this many spacings off the mode lattice;
+GLIMPSE_WIDTH = 0.6  # so is one off the lattice and narrower than this (of typical)
 MAX_SPAN = 0.65      # a crossing never spans more than this many spacings
 # mean |negative excursion| below the baseline -> noise sigma; calibrated on
 # white Gaussian noise against the default baseline window (see tests).
@@ -849,7 +850,7 @@ class StreamCounter:
         return (np.array(s2, np.int64), np.array(e2, np.int64), np.array(c2),
                 np.array(cl, bool), np.array(cr, bool))
 
-    def _measure(self, st, en, cut_l, cut_r) -> dict[str, np.ndarray]:
+    def _measure(self, st, en, cut_l, cut_r, conf=None) -> dict[str, np.ndarray]:
         """Centre, area, height, extent and direction of candidate runs (vectorised).
 
         The centre is the intensity-weighted mean position of the samples above
@@ -876,6 +877,10 @@ class StreamCounter:
         rel = idx - lo
         r0, rm, rp = rr[rel], rr[rel - 1], rr[rel + 1]
         med = np.maximum(np.minimum(rm, r0), np.minimum(np.maximum(rm, r0), rp))
+        if conf is not None:
+            cut = self._valleys(med, ln, cs, st, conf)
+            if cut is not None:
+                return cut
         hraw = np.maximum.reduceat(r0, cs)
         hmed = np.maximum.reduceat(med, cs)
         half = np.repeat(0.5 * hmed, ln)
@@ -907,13 +912,56 @@ class StreamCounter:
                 "height": height, "hmed": hmed, "d": self._d[st - t0].astype(np.int64),
                 "partial": partial, "pmin": pmin, "pmax": pmax, "step": step}
 
+    def _valleys(self, med, ln, cs, st, conf):
+        """Split runs holding two blips: a valley below half the lower of two peaks
+        that both reach the trigger level (a trough that never got back down to
+        the re-arm level, e.g. under drift the baseline could not follow).
+        Returns the measurement of the pieces, or None when no run needs it."""
+        k = ln.size
+        seg = np.repeat(np.arange(k), ln)
+        big = 2.0 * (float(np.ptp(med)) + 1.0)
+        up = med + seg * big
+        left = np.maximum.accumulate(up) - seg * big
+        down = med + (k - 1 - seg) * big
+        right = np.maximum.accumulate(down[::-1])[::-1] - (k - 1 - seg) * big
+        need = np.repeat(conf * (self._hi / self._conf), ln)
+        side = np.minimum(left, right)
+        deep = (med < 0.5 * side) & (side >= need)
+        if not deep.any():
+            return None
+        # one cut per valley, at its lowest sample
+        di = np.flatnonzero(deep)
+        brk = np.concatenate(([True], np.diff(di) > 1))
+        starts = np.flatnonzero(brk)
+        lows = np.minimum.reduceat(med[di], starts)
+        cut_at = []
+        for s0, s1, lo in zip(starts.tolist(), np.append(starts[1:], di.size).tolist(), lows.tolist()):
+            j = di[s0:s1]
+            cut_at.append(int(j[int(np.argmax(med[j] == lo))]))
+        cut_at = np.array(cut_at, np.int64)
+        run_of = seg[cut_at]
+        absolute = st[run_of] + (cut_at - cs[run_of])
+        s2 = np.unique(np.concatenate((st, absolute)))           # piece starts
+        owner = np.searchsorted(st, s2, side="right") - 1
+        same = np.append(owner[1:] == owner[:-1], False)
+        e2 = np.where(same, np.append(s2[1:], 0), st[owner] + ln[owner])
+        first = s2 == st[owner]
+        last = ~same
+        cl = self._cl_tmp[owner] & first
+        cr = self._cr_tmp[owner] & last
+        out = self._measure(s2, e2, cl, cr)
+        out["_conf"] = conf[owner]
+        return out
+
     # ------------------------------------------------------------- event stage
     def _events(self, spans, revs: list[tuple], F: int) -> None:
         """Run the up/down counter over the new candidates and reversals, in time order."""
         cols = None
         if spans is not None:
             st, en, conf, cl, cr = self._split(*spans)
-            c = self._measure(st, en, cl, cr)
+            self._cl_tmp, self._cr_tmp = cl, cr
+            c = self._measure(st, en, cl, cr, conf)
+            conf = c.pop("_conf", conf)
             # single-sample spikes fail here: their 3-point median stays in the noise
             keep = c["hmed"] > conf
             if keep.any():
@@ -1047,6 +1095,10 @@ class StreamCounter:
             return L["k"], False
         n = int(np.rint(xs))
         return L["k"] + d * n, abs(xs - n) > OFF_LATTICE
+
+    def _glimpse_like(self, width: float, low: bool) -> bool:
+        """Low, or clearly narrower than the typical blip: what a kick's brief look is."""
+        return bool(low or (self._wtyp and width < GLIMPSE_WIDTH * self._wtyp))
 
     def _weak(self, width, partial_all):
         """Partly crossed or much too narrow to be a mode on their own (glimpses, cut tails)."""
@@ -1203,8 +1255,11 @@ class StreamCounter:
         newi = np.flatnonzero(new)
         cstart = np.concatenate(([P["start"]], c["start"][newi]))
         weak0 = self._weak(width[:m], npart[:m] >= parts[:m])
-        weak0[0] |= P["deadband"] or P["repeat"] or (P["offlat"] and not P["hasmain"])
+        weak0[0] |= P["deadband"] or P["repeat"] or (P["offlat"] and self._glimpse_like(
+            width[0], not P["hasmain"]))
         minor = nmain[:m] == 0
+        if self._wtyp:
+            minor = minor | (width[:m] < GLIMPSE_WIDTH * self._wtyp)
         base_k, base_c = P["anc_k"], P["anc_cent"]
         if base_c is None:
             base_k, base_c = P["k"], float(cen[0])
@@ -1274,7 +1329,7 @@ class StreamCounter:
         P["cent"] = cen
         width = max(P["pmax"] - P["pmin"], 0.0) + P["stepsum"] / P["parts"]
         weak = (P["npartial"] >= P["parts"] or P["deadband"] or P["repeat"]
-                or (P["offlat"] and not P["hasmain"])
+                or (P["offlat"] and self._glimpse_like(width, not P["hasmain"]))
                 or (bool(self._wtyp) and width < WEAK_WIDTH * self._wtyp))
         if not weak and P["anc_cent"] is not None and not P["fresh"] and P["n"] >= 1:
             self._push_gaps([P["d"] * (cen - P["anc_cent"]) / P["n"]], [P["n"]])
@@ -1497,6 +1552,11 @@ class StreamCounter:
     def spacing_steps(self) -> float | None:
         """The running spacing the counter works with (None until learnt)."""
         return self._S
+
+    @property
+    def noise_sigma(self) -> float | None:
+        """The noise level (standard deviation of one sample) the thresholds are set from."""
+        return self._sigma
 
     def mode_centres(self) -> dict[str, np.ndarray]:
         """Per-mode means: k, centre up / down (NaN if never crossed that way), counts, height, width."""

@@ -120,3 +120,30 @@ def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None,
         rel_ng = (chip.get("group_index_u") or 0.0) / ng
         out["length_um"], out["length_um_u"] = L, L * math.hypot(rel_sp, rel_ng)
     return out
+
+
+def length_by_count(n_modes: int, span_nm: float, wavelength_nm: float, group_index: float,
+                    span_nm_u: float = 0.0, wavelength_nm_u: float = 0.0,
+                    group_index_u: float = 0.0) -> dict:
+    """The by-count route: n_modes whose centres span span_nm around wavelength_nm.
+
+    For a rig without a stage calibration (span and wavelength then come from
+    elsewhere, e.g. a wavemeter reading at the first and the last mode):
+    delta_lambda = W / (N - 1), L = lambda^2 / (2 n_g delta_lambda), with the
+    GUM uncertainty of L from those of W, lambda and n_g (N is exact).
+    """
+    from analysis.uncertainty import Input, gum
+    if n_modes < 2:
+        raise ValueError("a count needs at least 2 modes to span anything")
+    if span_nm <= 0:
+        raise ValueError(f"the span must be positive, got {span_nm} nm")
+    intervals = n_modes - 1
+
+    def length(w, lam, ng):
+        return chip_length_um(lam, w / intervals, ng)
+
+    L, L_u, budget = gum(length, [Input("span_nm", span_nm, span_nm_u, "first to last mode centre"),
+                                  Input("wavelength_nm", wavelength_nm, wavelength_nm_u, ""),
+                                  Input("[chip] group_index", group_index, group_index_u, "rig file")])
+    return {"modes": int(n_modes), "span_nm": float(span_nm), "spacing_nm": span_nm / intervals,
+            "length_um": L, "length_um_u": L_u, "budget": budget}

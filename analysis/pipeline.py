@@ -80,20 +80,25 @@ def spectral_period_steps(position_steps, value, pass_index, spacing_hint: float
     y = value[sel].astype(float)
     if np.ptp(x) < 4 * spacing_hint:
         return None
+    # the middle half of the pass: the spacing in steps changes along a wide sweep
+    lo_x, hi_x = np.quantile(x, [0.25, 0.75])
+    if hi_x - lo_x >= 8 * spacing_hint:
+        mid = (x >= lo_x) & (x <= hi_x)
+        x, y = x[mid], y[mid]
     width = max(spacing_hint / 8.0, np.ptp(x) / 4000.0)
     b = np.floor((x - x.min()) / width).astype(np.int64)
     cnt = np.bincount(b)
     have = cnt > 0
     xb = (np.bincount(b, weights=x)[have] / cnt[have])
     yb = (np.bincount(b, weights=y)[have] / cnt[have])
-    yb -= np.median(yb)
+    yb -= yb.mean()
     # peaks are about spacing^2/span wide: a coarse grid at a third of that, then refined
     n_coarse = int(min(3000, max(200, 3 * 1.5 * np.ptp(x) / spacing_hint)))
     periods = np.linspace(0.5 * spacing_hint, 2.0 * spacing_hint, n_coarse)
-    power = lombscargle(xb, yb, 2 * np.pi / periods, precenter=True)
+    power = lombscargle(xb, yb, 2 * np.pi / periods)
     best = int(np.argmax(power))
     fine = np.linspace(periods[max(best - 2, 0)], periods[min(best + 2, periods.size - 1)], 200)
-    pf = lombscargle(xb, yb, 2 * np.pi / fine, precenter=True)
+    pf = lombscargle(xb, yb, 2 * np.pi / fine)
     return float(fine[int(np.argmax(pf))])
 
 
@@ -112,11 +117,13 @@ def per_pass_results(ct: dict, pass_of_index: np.ndarray, fit: dict | None = Non
     """Count and spacing of every pass, and how well it agrees with the whole map.
 
     Only trusted crossings (not the counter's weak ones: kick glimpses, cut
-    tails) are fitted. ``offset_steps`` is the median distance of the pass's
-    centres (backlash-corrected) from the map's fit; ``consistent`` says the
-    pass's spacing lies within 3 of its standard errors of the overall one
-    and its offset within a quarter spacing (a renumbered or drifting pass
-    fails this).
+    tails) are used. Each pass's centres (backlash-corrected) are compared
+    with the whole map's fit: ``offset_steps`` is their mean distance from
+    it, ``spacing_steps`` the map's spacing plus the slope of that distance
+    against mode number (so every pass is judged at the same centre), with
+    its standard error. ``consistent`` (passes of 5 modes or more): the slope
+    within 3 standard errors (or 0.5 %) of zero and the offset within a
+    quarter spacing; a renumbered or drifting pass fails.
     """
     out = []
     if ct["index"].size == 0:
@@ -125,22 +132,29 @@ def per_pass_results(ct: dict, pass_of_index: np.ndarray, fit: dict | None = Non
     strong = ~np.asarray(ct.get("weak", np.zeros(ct["index"].size, bool)), bool)
     coef = (fit or {}).get("coef")
     for p in np.unique(p_of):
-        sel = (p_of == p) & strong
-        if not sel.any():
-            continue
-        d = int(ct["direction"][sel][0])
-        sp, su, _ = fit_spacing(ct["mode"][sel], ct["position_steps"][sel])
-        row = {"pass": int(p), "direction": d, "crossings": int((p_of == p).sum()),
-               "modes": int(np.unique(ct["mode"][p_of == p]).size),
-               "spacing_steps": sp, "spacing_steps_u": su, "offset_steps": None, "consistent": None}
-        if coef is not None and sp is not None:
-            mech = ct["position_steps"][sel] - d * (backlash or 0.0) / 2.0
-            model = np.polyval(coef, ct["mode"][sel] - fit["k_centre"])
-            off = float(np.median(mech - model))
-            row["offset_steps"] = off
+        allp = p_of == p
+        sel = allp & strong
+        row = {"pass": int(p), "direction": int(ct["direction"][allp][0]),
+               "crossings": int(allp.sum()), "modes": int(np.unique(ct["mode"][sel]).size),
+               "spacing_steps": None, "spacing_steps_u": None, "offset_steps": None, "consistent": None}
+        if coef is not None and sel.sum() >= 3:
+            d = ct["direction"][sel]
+            x = ct["mode"][sel] - fit["k_centre"]
+            resid = ct["position_steps"][sel] - d * (backlash or 0.0) / 2.0 - np.polyval(coef, x)
+            A = np.vstack([x, np.ones_like(x)]).T
+            (slope, off), *_ = np.linalg.lstsq(A, resid, rcond=None)
+            dof = max(x.size - 2, 1)
+            s2 = float(np.sum((resid - A @ np.array([slope, off])) ** 2) / dof)
+            sxx = float(np.sum((x - x.mean()) ** 2))
+            se = math.sqrt(s2 / sxx) if sxx > 0 else None
             overall = abs(coef[-2])
-            z_ok = su is None or abs(sp - overall) <= 3 * math.hypot(su, spacing_u or 0.0) + 1e-9
-            row["consistent"] = bool(z_ok and abs(off) < 0.25 * overall)
+            sign = 1.0 if coef[-2] >= 0 else -1.0
+            row["spacing_steps"] = overall + sign * float(slope)
+            row["spacing_steps_u"] = se
+            row["offset_steps"] = float(np.mean(resid))
+            if np.unique(ct["mode"][sel]).size >= 5:
+                tol = max(3.0 * math.hypot(se or 0.0, spacing_u or 0.0), 5e-3 * overall)
+                row["consistent"] = bool(abs(slope) <= tol and abs(row["offset_steps"]) < 0.25 * overall)
         out.append(row)
     return out
 
@@ -245,14 +259,30 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
             cs = row["centre_steps"]
             row["wavelength_nm"] = None if cs is None else physics.littrow_wavelength_nm(
                 physics.angle_deg(cs, cal.deg_per_step, cal.angle_at_zero_deg), cal.lines_per_mm, cal.order)
-    # The by-count route: N modes over the span they cover (no fit, no calibration needed).
+    # The by-count route: N modes over the span their centres cover (no fit needed).
+    # The span's uncertainty is that of its two end centres (the fit's residual scatter).
     if ok.sum() >= 2:
-        span = float(np.nanmax(mech) - np.nanmin(mech))
-        n_int = int(mc["mode"][ok].max() - mc["mode"][ok].min())
+        k_ok = mc["mode"][ok]
+        i_lo, i_hi = int(np.argmin(k_ok)), int(np.argmax(k_ok))
+        span = float(abs(mech[ok][i_hi] - mech[ok][i_lo]))
+        n_int = int(k_ok.max() - k_ok.min())
         if n_int > 0:
-            result["by_count"] = {"span_steps": span, "intervals": n_int, "spacing_steps": span / n_int,
-                                  # +-half a spacing at each end, uniform: u = spacing/sqrt(6)/N
-                                  "spacing_steps_u": span / n_int / math.sqrt(6) / n_int}
+            u_span = math.sqrt(2.0) * float((fit or {}).get("residual_rms_steps") or 0.0)
+            bc = {"modes": n_int + 1, "span_steps": span, "intervals": n_int,
+                  "spacing_steps": span / n_int, "spacing_steps_u": u_span / n_int}
+            chip = (sections or {}).get("chip", {}) or {}
+            if cal is not None and chip.get("group_index"):
+                lam_end = [physics.littrow_wavelength_nm(physics.angle_deg(
+                    float(mech[ok][i]), cal.deg_per_step, cal.angle_at_zero_deg), cal.lines_per_mm, cal.order)
+                    for i in (i_lo, i_hi)]
+                span_nm = abs(lam_end[1] - lam_end[0])
+                rel = math.hypot(u_span / span if span else 0.0,
+                                 cal.deg_per_step_u / abs(cal.deg_per_step) if cal.deg_per_step else 0.0)
+                bc.update(physics.length_by_count(
+                    n_int + 1, span_nm, 0.5 * (lam_end[0] + lam_end[1]), float(chip["group_index"]),
+                    span_nm_u=span_nm * rel, group_index_u=float(chip.get("group_index_u") or 0.0)))
+                bc["span_steps"] = span
+            result["by_count"] = bc
     return result
 
 

@@ -60,7 +60,8 @@ class Spec:
     angle_at_zero_u_deg: float = 0.02
     group_index_u: float = 0.04
     lines_per_mm_u: float = 0.0
-    cal_error_sigmas: float = 0.0  # draw the true calibration this many sigmas off (random sign)
+    cal_error_sigmas: float = 0.0  # rig calibration = truth + this x N(0, u) per input (0 = exact)
+    drop_modes: tuple = ()         # indices (among the modes in the sweep) given no blip at all
 
 
 @dataclass
@@ -190,6 +191,9 @@ def make_trace(spec: Spec) -> Trace:
     centre = 0.5 * (first + last)
     sig_env = (span / 2) / math.sqrt(2 * math.log(1 / spec.edge_height)) if spec.edge_height < 1 else np.inf
     heights = np.exp(-0.5 * ((a_k - centre) / sig_env) ** 2)
+    if spec.drop_modes:
+        in_sweep = np.sort(inside)
+        heights[in_sweep[list(spec.drop_modes)]] = 0.0
     fwhm = spec.width_frac * S_mid
     env_w = max(fwhm, 0.5)
     reach = (40 if spec.shape == "lorentz" else 5) * env_w
@@ -261,6 +265,9 @@ def make_trace(spec: Spec) -> Trace:
             prom[i] = prof[near].max() - max(prof[left].min(), prof[right].min())
     prom_snr = prom * spec.snr
     strong = crossed & (prom_snr >= 8.0)
+    dropped = np.zeros(a_k.size, bool)
+    if spec.drop_modes:
+        dropped[np.sort(inside)[list(spec.drop_modes)]] = True
     weak = crossed & (prom_snr >= 2.5)
     crossed_idx = np.flatnonzero(crossed)
     k_mid = 0.5 * (crossed_idx.min() + crossed_idx.max())
@@ -278,11 +285,12 @@ def make_trace(spec: Spec) -> Trace:
     cal = {"deg_per_step": deg_per_step, "angle_at_zero_deg": angle_at_zero,
            "lines_per_mm": lpm, "group_index": n_g}
     if spec.cal_error_sigmas:
-        sgn = rng.choice([-1.0, 1.0], 4) * spec.cal_error_sigmas * rng.uniform(0, 1, 4)
-        cal = {"deg_per_step": deg_per_step + sgn[0] * dps_u,
-               "angle_at_zero_deg": angle_at_zero + sgn[1] * spec.angle_at_zero_u_deg,
-               "lines_per_mm": lpm + sgn[2] * spec.lines_per_mm_u,
-               "group_index": n_g + sgn[3] * spec.group_index_u}
+        # the rig's values are what a calibration with these uncertainties gave
+        z = spec.cal_error_sigmas * np.random.default_rng(spec.seed + 10_000).normal(size=4)
+        cal = {"deg_per_step": deg_per_step + z[0] * dps_u,
+               "angle_at_zero_deg": angle_at_zero + z[1] * spec.angle_at_zero_u_deg,
+               "lines_per_mm": lpm + z[2] * spec.lines_per_mm_u,
+               "group_index": n_g + z[3] * spec.group_index_u}
     sections = {
         "stage": {"deg_per_step": cal["deg_per_step"], "deg_per_step_u": dps_u,
                   "angle_at_zero_deg": cal["angle_at_zero_deg"],
@@ -297,6 +305,7 @@ def make_trace(spec: Spec) -> Trace:
              "modes_crossed": int(crossed.sum()), "spacing_steps": spacing_true,
              "spacing_nm": spacing_nm_true, "length_um": L_um, "wavelength_nm": lam_mid,
              "group_index": n_g, "backlash_steps": spec.backlash_steps, "mode_positions": a_k[crossed],
+             "dropped_positions": a_k[dropped],
              "noise_sigma": sigma}
     return Trace(position=c, direction=d, value=v, actual=act, spec=spec, sections=sections,
                  truth=truth)

@@ -1,0 +1,201 @@
+"""The streaming counter, checked against outside references and against its own promises.
+
+Traces come from tests/tracegen.py, a model of its own (not the project's simulator).
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import astuple, replace
+from functools import lru_cache
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from scipy.signal import find_peaks
+
+from analysis.counter import SETTINGS, StreamCounter, initial_spacing, validate_settings
+from tests.tracegen import Spec, make_trace
+
+
+def count(position, direction, value, chunks=None, counter_settings=None, resume_after=None):
+    """Feed a trace in the given chunk sizes (cycled); optionally resume from JSON state."""
+    c = StreamCounter(counter_settings)
+    events, i, k = [], 0, 0
+    sizes = chunks or [value.size]
+    while i < value.size:
+        n = sizes[k % len(sizes)]
+        events += c.feed(position[i:i + n], direction[i:i + n], value[i:i + n])
+        i, k = i + n, k + 1
+        if resume_after is not None and k == resume_after:
+            c = StreamCounter.from_state(json.loads(json.dumps(c.get_state())))
+    events += c.finish()
+    return c, events
+
+
+def blips(events):
+    return [e for e in events if e.kind == "blip"]
+
+
+# ---------------------------------------------------------------- settings
+def test_settings_follow_the_rig_schema_and_a_rig_file_checks_them():
+    # schema format of daq/rig.py: key -> default, the default's type is the key's type
+    assert all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in SETTINGS.values())
+    assert validate_settings(dict(SETTINGS)) == []
+    from daq.rig import RigError, load_rig, parse_rig
+    base = load_rig().text
+    assert parse_rig(base + "\n").sections["counter"]["hi_sigma"] == SETTINGS["hi_sigma"]
+    with pytest.raises(RigError) as err:
+        parse_rig(base.replace("[counter]", "[counter]\nlo_sigma = 6.0"))
+    assert "[counter] lo_sigma" in str(err.value) and "\n" not in str(err.value)
+
+
+@pytest.mark.parametrize("change, key", [
+    ({"lo_sigma": 5.0, "hi_sigma": 4.0}, "lo_sigma"),
+    ({"lo_sigma": -1.0}, "lo_sigma"),
+    ({"confirm_sigma": 0.0}, "confirm_sigma"),
+    ({"min_height": -0.1}, "min_height"),
+    ({"baseline_window": 4}, "baseline_window"),
+    ({"merge_fraction": 1.5}, "merge_fraction"),
+    ({"expected_spacing_steps": -3.0}, "expected_spacing_steps"),
+])
+def test_impossible_settings_are_named(change, key):
+    problems = validate_settings(dict(SETTINGS, **change))
+    assert key in [k for k, _ in problems]
+    assert all("\n" not in msg for _, msg in problems)
+    with pytest.raises(ValueError):
+        StreamCounter(change)
+
+
+def test_bad_input_is_refused():
+    c = StreamCounter()
+    with pytest.raises(ValueError):
+        c.feed([1, 2, 3], [1, 1], [0.0, 0.0, 0.0])
+    with pytest.raises(ValueError):
+        c.feed([1, 2], [1, 1], [0.0, float("nan")])
+    c.finish()
+    with pytest.raises(RuntimeError):
+        c.feed([1], [1], [0.0])
+
+
+# ------------------------------------------------------ external references
+def test_blips_are_the_peaks_scipy_find_peaks_finds_on_a_clean_trace():
+    # External reference: scipy.signal.find_peaks with prominence and distance, on a
+    # low-noise trace where the right answer is not in doubt.
+    tr = make_trace(Spec(seed=11, n_modes=60, spacing_steps=40, snr=300, width_frac=0.1,
+                         shape="gauss", edge_height=0.9))
+    peaks, _ = find_peaks(tr.value, prominence=0.3, distance=20)
+    c, events = count(tr.position, tr.direction, tr.value)
+    got = np.sort([e.position_steps for e in blips(events)])
+    assert len(got) == peaks.size == c.modes
+    np.testing.assert_allclose(got, tr.position[peaks], atol=0.6)
+
+
+def test_noise_level_agrees_with_the_sample_standard_deviation():
+    # The thresholds are in units of the noise sigma: compare with numpy's std of the
+    # noise actually added (white Gaussian), with blips present.
+    rng = np.random.default_rng(2)
+    n, sigma = 60000, 0.3
+    pos = np.arange(n, dtype=float)
+    noise = rng.normal(0, sigma, n)
+    value = 5.0 + noise + 4.0 / (1 + ((pos % 50 - 25) / 2.0) ** 2)
+    c, _ = count(pos, np.ones(n), value)
+    assert c.noise_sigma == pytest.approx(np.std(noise), rel=0.06)
+
+
+def test_initial_spacing_sees_through_split_blips():
+    # every blip split in two (sub-peaks 0.2 spacing apart): the spacing, not the split
+    centres = np.arange(20) * 50.0
+    split = np.sort(np.concatenate((centres - 5.0, centres + 5.0)))
+    s, periods = initial_spacing([split], [np.ones(split.size)])
+    assert s == pytest.approx(50.0, rel=0.01) and periods > 10
+
+
+# ------------------------------------------------------------- behaviour
+def test_single_sample_spikes_never_count():
+    rng = np.random.default_rng(3)
+    n = 40000
+    pos = np.arange(n, dtype=float)
+    value = 2.0 + rng.normal(0, 0.05, n)
+    hit = rng.choice(n, 60, replace=False)
+    value[hit] += rng.choice([-1.0, 1.0], hit.size) * rng.uniform(1.0, 5.0, hit.size)  # 20-100 sigma
+    c, events = count(pos, np.ones(n), value)
+    assert c.crossings == 0 and c.modes == 0 and blips(events) == []
+
+
+def test_up_and_down_passes_count_each_mode_once_and_find_the_backlash():
+    tr = make_trace(Spec(seed=5, n_modes=50, spacing_steps=40, passes=3, backlash_steps=37, snr=30))
+    c, events = count(tr.position, tr.direction, tr.value, chunks=[4096])
+    assert tr.truth["modes_strong"] <= c.modes <= tr.truth["modes_all"]
+    assert c.crossings >= 3 * tr.truth["modes_strong"] - 3
+    assert c.estimate()["backlash_steps"] == pytest.approx(37.0, abs=1.0)
+    reversals = [e for e in events if e.kind == "reversal"]
+    assert len(reversals) == 2 and all(e.direction in (-1, 1) for e in reversals)
+
+
+def test_a_downward_sweep_counts_down():
+    tr = make_trace(Spec(seed=6, n_modes=40, spacing_steps=60, downward=True, snr=30))
+    c, events = count(tr.position, tr.direction, tr.value)
+    modes = [e.mode for e in blips(events)]
+    assert all(b == a - 1 for a, b in zip(modes, modes[1:]))
+    assert tr.truth["modes_strong"] <= c.modes <= tr.truth["modes_all"]
+
+
+def test_estimate_is_cheap_and_consistent_with_the_counts():
+    tr = make_trace(Spec(seed=7, n_modes=60, spacing_steps=40, snr=30))
+    c, _ = count(tr.position, tr.direction, tr.value)
+    e = c.estimate()
+    assert (e["modes"], e["crossings"]) == (c.modes, c.crossings)
+    assert e["spacing_steps"] == pytest.approx(tr.truth["spacing_steps"], rel=0.005)
+    assert e["spacing_steps_u"] > 0 and e["backlash_steps"] is None
+    import time
+    t = time.perf_counter()
+    for _ in range(20):
+        c.estimate()
+    assert (time.perf_counter() - t) / 20 < 0.02      # a dashboard asks 5 times a second
+
+
+# ------------------------------------------- chunking and resuming change nothing
+@lru_cache(maxsize=None)
+def _trace(which: int):
+    if which == 0:   # up and down with backlash, kicks, split blips, spikes, short reversals
+        spec = Spec(seed=21, n_modes=40, spacing_steps=40, passes=2, backlash_steps=25, snr=15,
+                    kick_rate=3e-3, split_depth=0.7, width_frac=0.25, spike_rate=2e-3,
+                    short_reversals=2, pink_frac=0.3, drift=1.0)
+    else:            # downward, several reads per step, clipped, 12-bit
+        spec = Spec(seed=22, n_modes=30, spacing_steps=60, downward=True, reads_per_step=2,
+                    clip_frac=0.7, adc_bits=12, snr=20)
+    tr = make_trace(spec)
+    return tr, count(tr.position, tr.direction, tr.value)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(which=st.sampled_from([0, 1]),
+       sizes=st.lists(st.integers(min_value=1, max_value=5000), min_size=1, max_size=12),
+       resume_after=st.one_of(st.none(), st.integers(min_value=1, max_value=30)))
+def test_results_do_not_depend_on_chunking_or_on_resuming(which, sizes, resume_after):
+    tr, (ref_counter, ref_events) = _trace(which)
+    c, events = count(tr.position, tr.direction, tr.value, chunks=sizes, resume_after=resume_after)
+    assert [astuple(e) for e in events] == [astuple(e) for e in ref_events]
+    assert c.estimate() == ref_counter.estimate()
+    assert (c.modes, c.crossings) == (ref_counter.modes, ref_counter.crossings)
+
+
+def test_state_is_plain_json():
+    tr, _ = _trace(0)
+    c = StreamCounter()
+    c.feed(tr.position[:3000], tr.direction[:3000], tr.value[:3000])
+    text = json.dumps(c.get_state())
+    assert json.loads(text)["version"] == 1
+    c2 = StreamCounter.from_state(json.loads(text))
+    assert c2.get_state() == json.loads(text)
+
+
+def test_settings_change_the_result_as_documented():
+    # a trigger level above every blip finds nothing; a fixed expected spacing is used as given
+    tr = make_trace(replace(Spec(seed=8, n_modes=30, spacing_steps=40, snr=20)))
+    c, _ = count(tr.position, tr.direction, tr.value, counter_settings={"min_height": 100.0})
+    assert c.modes == 0
+    c2, _ = count(tr.position, tr.direction, tr.value,
+                  counter_settings={"expected_spacing_steps": 40.0})
+    assert tr.truth["modes_strong"] <= c2.modes <= tr.truth["modes_all"]
