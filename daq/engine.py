@@ -257,6 +257,10 @@ class Engine:
                     p_q, t_q, moving = stage.position_steps(), now, stage.is_moving()
                 pos = p_q + d * speed * (now - t_q) if moving else p_q
                 pos = int(round(min(max(pos, min(begin, end)), max(begin, end))))
+                # Positions never step back within a pass: a late position report
+                # must not make the same steps appear twice.
+                if acc_pos is not None and (pos - acc_pos) * d < 0:
+                    pos = acc_pos
                 self.state.position_steps = pos
                 # Readings are binned to one sample per step (mean and spread), so the
                 # log and the counter see the same sampling as a stepped sweep

@@ -204,6 +204,11 @@ def _validate_values(source: str, s: dict[str, dict[str, Any]]) -> None:
     from sims.scenarios import validate_sim_settings
     for key, msg in validate_sim_settings(s["sim"]):
         raise RigError(source, f"[sim] {key}", msg)
+    # Driver settings (regular expressions, templates, ROI...): checked here so a
+    # bad one is a rig-file error before any port is opened.
+    from drivers.registry import check_settings
+    for key, msg in check_settings(s):
+        raise RigError(source, key, msg)
 
 
 def parse_rig(text: str, source: str = "<string>", overrides: list[str] | None = None) -> Rig:
