@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import logging
 import signal
 import sys
 import threading
@@ -132,6 +133,7 @@ def run(args) -> int:
                 _reapproach(stage, rig, skip)
             engine.note("status", f"resumed after {skip} samples")
         log.set_meta(status="running")
+        _route_warnings(engine)
         tty = sys.stdout.isatty() and not args.json and not args.plain
         view = TerminalView(state) if tty else PlainView(state)
         keys = KeyReader(pause, stopper.request) if tty else None
@@ -171,6 +173,25 @@ def run(args) -> int:
     if code == 1:
         fail(reason, 1)
     return code
+
+
+class _WarningsToEvents(logging.Handler):
+    """Driver warnings (logging, under "modetick") become logged events and dashboard lines."""
+
+    def __init__(self, engine):
+        super().__init__(logging.WARNING)
+        self.engine = engine
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.engine.note("warning", record.getMessage())
+
+
+def _route_warnings(engine) -> None:
+    logger = logging.getLogger("modetick")
+    for h in list(logger.handlers):
+        if isinstance(h, _WarningsToEvents):
+            logger.removeHandler(h)
+    logger.addHandler(_WarningsToEvents(engine))
 
 
 def _resumed_counter(log, cls):
