@@ -838,17 +838,24 @@ class StreamCounter:
         nocut = np.zeros(st.size, bool)
         if not (i1 > i0).any():
             return st, en, conf, nocut, nocut
+        cut = np.flatnonzero(i1 > i0)
         s2, e2, c2, cl, cr = [], [], [], [], []
-        for s, e, c, a, b in zip(st.tolist(), en.tolist(), conf.tolist(), i0.tolist(), i1.tolist()):
-            cuts = [s] + revs[a:b].tolist() + [e]
+        for i in cut.tolist():                  # only the runs that straddle a turn
+            cuts = [int(st[i])] + revs[i0[i]:i1[i]].tolist() + [int(en[i])]
             for j in range(len(cuts) - 1):
                 s2.append(cuts[j])
                 e2.append(cuts[j + 1])
-                c2.append(c)
+                c2.append(float(conf[i]))
                 cl.append(j > 0)
                 cr.append(j < len(cuts) - 2)
-        return (np.array(s2, np.int64), np.array(e2, np.int64), np.array(c2),
-                np.array(cl, bool), np.array(cr, bool))
+        keep = np.ones(st.size, bool)
+        keep[cut] = False
+        S = np.concatenate((st[keep], np.array(s2, np.int64)))
+        order = np.argsort(S, kind="stable")
+        return (S[order], np.concatenate((en[keep], np.array(e2, np.int64)))[order],
+                np.concatenate((conf[keep], np.array(c2)))[order],
+                np.concatenate((nocut[keep], np.array(cl, bool)))[order],
+                np.concatenate((nocut[keep], np.array(cr, bool)))[order])
 
     def _measure(self, st, en, cut_l, cut_r, conf=None) -> dict[str, np.ndarray]:
         """Centre, area, height, extent and direction of candidate runs (vectorised).
@@ -878,9 +885,13 @@ class StreamCounter:
         r0, rm, rp = rr[rel], rr[rel - 1], rr[rel + 1]
         med = np.maximum(np.minimum(rm, r0), np.minimum(np.maximum(rm, r0), rp))
         if conf is not None:
-            cut = self._valleys(med, ln, cs, st, conf)
-            if cut is not None:
-                return cut
+            # only a run longer than 0.6 spacing can hold two blips
+            long_ = (np.abs(self._p[en - 1 - t0] - self._p[st - t0]) > 0.6 * self._S
+                     if self._S else np.ones(st.size, bool))
+            if long_.any():
+                cut = self._valleys(med, ln, cs, st, conf, long_)
+                if cut is not None:
+                    return cut
         hraw = np.maximum.reduceat(r0, cs)
         hmed = np.maximum.reduceat(med, cs)
         half = np.repeat(0.5 * hmed, ln)
@@ -912,7 +923,7 @@ class StreamCounter:
                 "height": height, "hmed": hmed, "d": self._d[st - t0].astype(np.int64),
                 "partial": partial, "pmin": pmin, "pmax": pmax, "step": step}
 
-    def _valleys(self, med, ln, cs, st, conf):
+    def _valleys(self, med, ln, cs, st, conf, long_):
         """Split runs holding two blips: a valley below half the lower of two peaks
         that both reach the trigger level (a trough that never got back down to
         the re-arm level, e.g. under drift the baseline could not follow).
@@ -926,7 +937,7 @@ class StreamCounter:
         right = np.maximum.accumulate(down[::-1])[::-1] - (k - 1 - seg) * big
         need = np.repeat(conf * (self._hi / self._conf), ln)
         side = np.minimum(left, right)
-        deep = (med < 0.5 * side) & (side >= need)
+        deep = (med < 0.5 * side) & (side >= need) & np.repeat(long_, ln)
         if not deep.any():
             return None
         # one cut per valley, at its lowest sample
@@ -1204,48 +1215,65 @@ class StreamCounter:
             cid = np.cumsum(new)
             firsts = np.concatenate(([P["ref"]], pos[new]))
         m = int(cid[-1])
-        # sums per crossing, each referred to its own first candidate and added in
-        # stream order (P's partial sums first), so the result is bit-identical
-        # to merging one candidate at a time however the stream was chunked
-        q = pos - firsts[cid]
-        ids = np.concatenate(([0], cid))
+        if m == pos.size:
+            # the common case: every candidate is a crossing of its own
+            one = np.ones(m)
+            sw = np.concatenate(([P["sw"]], area))
+            swp = np.concatenate(([P["swp"]], np.zeros(m)))
+            parts = np.concatenate(([P["parts"]], one)).astype(np.int64)
+            npart = np.concatenate(([P["npartial"]], c["partial"].astype(float)))
+            ssum = np.concatenate(([P["stepsum"]], c["step"]))
+            cmin = np.concatenate(([P["pmin"]], c["pmin"]))
+            cmax = np.concatenate(([P["pmax"]], c["pmax"]))
+            hmax = np.concatenate(([P["h"]], h))
+            pk = np.concatenate(([P["peak"]], c["peak"]))
+            cend = np.concatenate(([P["end"]], c["end"]))
+            nmain = np.concatenate(([float(P["hasmain"])], main.astype(float)))
+            cen = firsts + np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
+            width = np.maximum(cmax - cmin, 0.0) + ssum / parts
+        else:
+            # sums per crossing, each referred to its own first candidate and added in
+            # stream order (P's partial sums first), so the result is bit-identical
+            # to merging one candidate at a time however the stream was chunked
+            q = pos - firsts[cid]
+            ids = np.concatenate(([0], cid))
 
-        def seqsum(p0, w):
-            return np.bincount(ids, weights=np.concatenate(([p0], w)), minlength=m + 1)
+            def seqsum(p0, w):
+                return np.bincount(ids, weights=np.concatenate(([p0], w)), minlength=m + 1)
 
-        sw = seqsum(P["sw"], area)
-        swp = seqsum(P["swp"], area * q)
-        parts = np.bincount(cid, minlength=m + 1)
-        parts[0] += P["parts"]
-        npart = np.bincount(cid, weights=c["partial"].astype(float), minlength=m + 1)
-        npart[0] += P["npartial"]
-        ssum = seqsum(P["stepsum"], c["step"])
-        # clusters are contiguous runs of candidates: reduce over their starts
-        present = np.flatnonzero(np.concatenate(([True], cid[1:] != cid[:-1])))
-        pid = cid[present]
+            sw = seqsum(P["sw"], area)
+            swp = seqsum(P["swp"], area * q)
+            parts = np.bincount(cid, minlength=m + 1)
+            parts[0] += P["parts"]
+            npart = np.bincount(cid, weights=c["partial"].astype(float), minlength=m + 1)
+            npart[0] += P["npartial"]
+            ssum = seqsum(P["stepsum"], c["step"])
+            # clusters are contiguous runs of candidates: reduce over their starts
+            present = np.flatnonzero(np.concatenate(([True], cid[1:] != cid[:-1])))
+            pid = cid[present]
 
-        def cred(ufunc, v, fill):
-            out = np.full(m + 1, fill)
-            out[pid] = ufunc.reduceat(v, present)
-            return out
+            def cred(ufunc, v, fill):
+                out = np.full(m + 1, fill)
+                out[pid] = ufunc.reduceat(v, present)
+                return out
 
-        cmin = cred(np.minimum, c["pmin"], np.inf)
-        cmax = cred(np.maximum, c["pmax"], -np.inf)
-        cmin[0] = min(cmin[0], P["pmin"])
-        cmax[0] = max(cmax[0], P["pmax"])
-        cen = firsts + np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
-        width = np.maximum(cmax - cmin, 0.0) + ssum / parts
-        hmax = cred(np.maximum, h, -np.inf)
-        pk = np.full(m + 1, -1, np.int64)
-        is_top = h == hmax[cid]
-        top_c, top_i = np.unique(cid[is_top], return_index=True)
-        pk[top_c] = c["peak"][np.flatnonzero(is_top)[top_i]]
-        if P["h"] >= hmax[0]:
-            hmax[0], pk[0] = P["h"], P["peak"]
-        cend = cred(np.maximum, c["end"], 0)
-        cend[0] = max(cend[0], P["end"])
-        nmain = np.bincount(cid, weights=main.astype(float), minlength=m + 1)
-        nmain[0] += P["hasmain"]
+            cmin = cred(np.minimum, c["pmin"], np.inf)
+            cmax = cred(np.maximum, c["pmax"], -np.inf)
+            cmin[0] = min(cmin[0], P["pmin"])
+            cmax[0] = max(cmax[0], P["pmax"])
+            cen = firsts + np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
+            width = np.maximum(cmax - cmin, 0.0) + ssum / parts
+            hmax = cred(np.maximum, h, -np.inf)
+            pk = np.full(m + 1, -1, np.int64)
+            is_top = h == hmax[cid]
+            top_c, top_i = np.unique(cid[is_top], return_index=True)
+            pk[top_c] = c["peak"][np.flatnonzero(is_top)[top_i]]
+            if P["h"] >= hmax[0]:
+                hmax[0], pk[0] = P["h"], P["peak"]
+            cend = cred(np.maximum, c["end"], 0)
+            cend[0] = max(cend[0], P["end"])
+            nmain = np.bincount(cid, weights=main.astype(float), minlength=m + 1)
+            nmain[0] += P["hasmain"]
         if m == 0:
             P.update(sw=float(sw[0]), swp=float(swp[0]), last=float(pos[-1]), h=float(hmax[0]),
                      hasmain=bool(nmain[0] > 0), peak=int(pk[0]), end=int(cend[0]),
@@ -1384,7 +1412,7 @@ class StreamCounter:
         if pairs.size:
             self._bpairs.extend(pairs.tolist())
             del self._bpairs[:-64]
-            self._b = float(np.median(pairs)) if pairs.size >= 3 else float(np.median(self._bpairs))
+            self._b = _median(pairs.tolist()) if pairs.size >= 3 else _median(self._bpairs)
         if self._run_cur:
             self._run_prev = self._run_cur
         self._run_cur = []
@@ -1401,14 +1429,31 @@ class StreamCounter:
             out.extend((k, c, h, d, r) for k, c, h, r in zip(ks, cs, hs, rel))
         return out
 
+    @staticmethod
+    def _run_arrays(run: list):
+        """(k, centre, direction) of a run's trusted crossings, as arrays."""
+        k = np.concatenate([np.asarray(r[0], np.int64) for r in run])
+        c = np.concatenate([np.asarray(r[1], float) for r in run])
+        d = np.concatenate([np.full(len(r[0]), r[3]) for r in run])
+        rel = np.concatenate([np.asarray(r[4], bool) for r in run])
+        return k[rel], c[rel], d[rel]
+
     def _pairs(self, cur: list, prev: list) -> np.ndarray:
         """Backlash estimates d * (centre in this run - centre in the previous run), per mode."""
         if not cur or not prev:
             return np.zeros(0)
-        pm = {k: (c, d) for k, c, _, d, rel in self._flat(prev) if rel}
-        out = [d * (c - pm[k][0]) for k, c, _, d, rel in self._flat(cur)
-               if rel and k in pm and pm[k][1] == -d]
-        return np.array(out)
+        kc, cc, dc = self._run_arrays(cur)
+        kp, cp, dp = self._run_arrays(prev)
+        if kc.size == 0 or kp.size == 0:
+            return np.zeros(0)
+        # the last crossing of each mode in the previous run (as a dict would keep it)
+        order = np.argsort(kp, kind="stable")
+        ks, first = np.unique(kp[order][::-1], return_index=True)
+        last = order[::-1][first]
+        j = np.searchsorted(ks, kc)
+        j = np.minimum(j, ks.size - 1)
+        hit = (ks[j] == kc) & (dp[last[j]] == -dc)
+        return dc[hit] * (cc[hit] - cp[last[j[hit]]])
 
     def _fit_backlash(self) -> float | None:
         """Backlash at the first reversal, from the signal alone.
