@@ -19,6 +19,12 @@ from tests.test_drivers_support import comb, section, sections, stepper_stage_ke
 
 SIM_YAML = Path(__file__).resolve().parent.parent / "sims" / "emulators" / "bench-sim.yaml"
 
+from daq.rig import RigError  # noqa: E402
+
+# A bad setting is refused by the rig loader (RigError) or, for what only the
+# device can tell (a file that is not there, a frame size), when it opens.
+BAD_SETTING = (RigError, DeviceError)
+
 
 @pytest.fixture
 def bench(comb):
@@ -71,7 +77,7 @@ def test_readbacks_ride_along_and_nothing_is_written(bench):
 
 def test_setpoints_need_allow_write(bench):
     stepper, ctl, meter, laser, laser_inst, raw = bench
-    with pytest.raises(DeviceError) as exc:
+    with pytest.raises(BAD_SETTING) as exc:
         open_devices(rig_text_setpoints(bench, allow_write=False, value=25.0))
     assert "[aux] setpoints" in str(exc.value) and "allow_write" in str(exc.value)
     assert laser_inst.writes == [] and laser_inst.temp_C == 23.5
@@ -79,7 +85,7 @@ def test_setpoints_need_allow_write(bench):
 
 def test_setpoint_outside_its_limits_is_never_sent(bench):
     stepper, ctl, meter, laser, laser_inst, raw = bench
-    with pytest.raises(DeviceError) as exc:
+    with pytest.raises(BAD_SETTING) as exc:
         open_devices(rig_text_setpoints(bench, allow_write=True, value=31.0))
     assert "outside its limits [20.0, 30.0]" in str(exc.value)
     assert laser_inst.writes == [] and laser_inst.temp_C == 23.5
@@ -103,7 +109,7 @@ def test_allowed_setpoint_is_written_once_and_read_back(bench):
 
 def test_a_channel_that_is_not_a_query_is_refused(bench):
     stepper, ctl, meter, laser, laser_inst, raw = bench
-    with pytest.raises(DeviceError) as exc:
+    with pytest.raises(BAD_SETTING) as exc:
         open_devices(rig(bench, [{"name": "current_mA", "query": "SOUR:CURR 80"}]))
     assert "read-only" in str(exc.value)
     assert laser_inst.writes == []

@@ -14,6 +14,12 @@ from drivers.registry import DETECTOR_DRIVERS, STAGE_DRIVERS
 from sims.emulators import StepperProtocol, start_line_meter, start_stepper
 from tests.test_drivers_support import comb, one_line, sections, stepper_stage_keys, wait_for  # noqa: F401
 
+from daq.rig import RigError  # noqa: E402
+
+# A bad setting is refused by the rig loader (RigError) or, for what only the
+# device can tell (a file that is not there, a frame size), when it opens.
+BAD_SETTING = (RigError, DeviceError)
+
 
 def open_stage(s):
     return STAGE_DRIVERS[s["stage"]["driver"]].factory(s, None)
@@ -236,11 +242,11 @@ def test_scan_moves_at_the_set_speed(comb):
 
 def test_bad_protocol_settings_are_named():
     keys = stepper_stage_keys("/dev/null", StepperProtocol(), position_reply="POS (\\d+)")
-    with pytest.raises(DeviceError) as exc:
+    with pytest.raises(BAD_SETTING) as exc:
         open_stage(sections(keys))
     assert "[stage] position_reply" in str(exc.value) and "(?P<steps>" in str(exc.value)
     keys = stepper_stage_keys("/dev/null", StepperProtocol(), move_abs="MA {pos}")
-    with pytest.raises(DeviceError) as exc:
+    with pytest.raises(BAD_SETTING) as exc:
         open_stage(sections(keys))
     assert "[stage] move_abs" in str(exc.value)
 
