@@ -228,9 +228,15 @@ class RunLog:
     # -- reading --------------------------------------------------------------
     def iter_blocks(self) -> Iterator[Samples]:
         """Yield the samples block by block (low memory, for replay)."""
-        cur = self.conn.execute("SELECT n, t_us, pos, dir, pass, value, spread, aux_json "
-                                "FROM sample_blocks ORDER BY block")
-        for n, t_us, pos, d, p, v, s, aux_json in cur:
+        try:
+            rows = self.conn.execute("SELECT n, t_us, pos, dir, pass, value, spread, aux_json "
+                                     "FROM sample_blocks ORDER BY block")
+            yield from self._decode_blocks(rows)
+        except sqlite3.DatabaseError as exc:
+            raise LogError(f"log {self.path}: damaged ({exc})") from None
+
+    def _decode_blocks(self, rows) -> Iterator[Samples]:
+        for n, t_us, pos, d, p, v, s, aux_json in rows:
             try:
                 aux = {k: np.asarray(x, dtype=np.float64)
                        for k, x in (json.loads(aux_json).items() if aux_json else [])}
