@@ -1,27 +1,39 @@
 """The streaming mode counter: samples in, counted chip modes out.
 
-Signal stage (vectorised per chunk, exact across chunk boundaries):
-  * the baseline is a grey opening of 8-sample block means (single-sample
-    dropouts filled in first), over ``baseline_window`` samples: it runs
-    under blips as wide as the spacing and follows drift;
-  * the noise level is the mean negative excursion below that baseline,
-    averaged over ``noise_window`` samples and updated once per 2048-sample
-    group (blips only ever push the signal up, so they do not inflate it);
-  * hysteresis: a candidate is a run of samples above ``lo_sigma`` that
-    reaches ``hi_sigma`` somewhere; it must also reach ``confirm_sigma`` in
-    its 3-point median, so a single-sample spike never counts.
+Signal stage (numpy, per pass of up to 16384 samples):
+  * baseline: a grey opening (sliding minimum, then maximum) of 8-sample block
+    means over ``baseline_window`` samples, single-sample dropouts filled in
+    first; it runs under blips as wide as the spacing and follows drift;
+  * noise: the mean excursion below that baseline (clipped at 4 sigma, so
+    spikes and dropouts do not inflate it), averaged over ``noise_window``
+    samples and updated every 8192 samples; blips only push the signal up;
+  * hysteresis: a candidate is a run of samples above ``lo_sigma`` that reaches
+    ``hi_sigma``; its 3-point median must reach ``confirm_sigma`` too, so a
+    single-sample spike never counts. Block maxima and minima pick the
+    stretches worth looking at sample by sample; a run holding two blips
+    (a valley below half of both peaks) is split;
+  * each candidate: centre = intensity-weighted position of the samples above
+    half its maximum (sub-step), height, width; runs are cut at reversals.
 
-Event stage (an up/down counter; Python only per reversal, numpy per run):
-  * candidates of one direction closer than ``merge_fraction`` of the spacing
-    are one crossing (split blips, a stick-slip kick seeing a blip again);
-  * moving on in the same direction, the mode index advances by the number
-    of spacings travelled (a missed blip leaves a gap, not a shift);
+Event stage (an up/down counter; numpy per run, Python per reversal):
+  * same-direction candidates closer than ``merge_fraction`` of the spacing
+    (and within 0.65 spacing of the first) are one crossing: split blips, a
+    stick-slip kick seeing a blip again;
+  * moving on, the mode index advances by the number of spacings from the
+    last trusted crossing (a missed blip leaves a gap, not a shift);
   * after a reversal the first crossing is the mode last crossed, shifted by
-    the backlash once it is known; at the first reversal, before the
-    backlash is known, the blip heights of the two runs decide.
+    the backlash; the backlash is fitted from the signal at the first turn
+    (the mount stands still through the dead band, which tells b from
+    b +- one spacing), then from the up/down offsets of each mode;
+  * weak crossings (crossed only partly: above half height at a turn or at
+    an end of the stream; in the dead band; much narrower than typical; a
+    repeat of the last mode; low and off the mode lattice, like a kick's
+    glimpse) are numbered but never anchor the numbering nor make a mode
+    alone. ``modes`` counts trusted crossings' modes, ``crossings`` all.
 
-Every decision depends only on the samples, never on how they were chunked,
-so feeding the same stream in any pieces gives the same events.
+Every decision depends only on the samples, never on how they were chunked or
+when the work ran, so any chunking, and a resume from ``get_state()``, gives
+the same events (tests check this exactly).
 """
 from __future__ import annotations
 
