@@ -244,6 +244,16 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
     result["spectral_period_steps"] = spectral_period_steps(pos, val, pass_index, spacing)
     result["gaps"] = find_gaps(mc["mode"])
     result["per_pass"] = per_pass_results(ct, pass_index, fit, backlash, spacing_u)
+    # The fit's standard error only sees scatter about one smooth curve; passes that
+    # disagree (drift, a kick-bent pass) are a second, Type A estimate (GUM 4.2):
+    # the standard deviation of the pass spacings over sqrt(passes). The larger is used.
+    pass_sp = [r["spacing_steps"] for r in result["per_pass"] if r["spacing_steps"] is not None]
+    result["spacing_steps_u_fit"] = spacing_u
+    if spacing is not None and len(pass_sp) >= 2:
+        u_passes = float(np.std(pass_sp, ddof=1) / math.sqrt(len(pass_sp)))
+        result["spacing_steps_u_passes"] = u_passes
+        spacing_u = max(spacing_u or 0.0, u_passes)
+        result["spacing_steps_u"] = spacing_u
     result["mode_map"] = [
         {"mode": int(k), "centre_up_steps": _f(u), "centre_down_steps": _f(dn), "centre_steps": _f(m),
          "n_up": int(nu), "n_down": int(nd), "height": _f(h), "width_steps": _f(w)}

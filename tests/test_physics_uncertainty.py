@@ -100,3 +100,19 @@ def test_directions_from_positions():
     d, p = directions_from_positions(pos)
     assert d.tolist() == [1, 1, 1, 1, 1, -1, -1, -1, -1, 1]
     assert p.tolist() == [0, 0, 0, 0, 0, 1, 1, 1, 1, 2]
+
+
+def test_spacing_uncertainty_covers_pass_to_pass_scatter():
+    # Type A evaluation (GUM 4.2): when passes disagree (here the chip drifts in
+    # temperature during a 4-pass run), the stated spacing u must include that scatter,
+    # so the simulator's true spacing lies within 3 u.
+    from daq.rig import load_rig
+    from sims.instruments import SimBench
+    from sims.trace import simulate_trace
+    from analysis.pipeline import analyze_trace
+    rig = load_rig(None, ['sim.scenario="drift"', "sim.seed=2", "sweep.passes=4"])
+    tr = simulate_trace(rig.sections)
+    truth = SimBench(rig.sections).truth()
+    r = analyze_trace(tr.position_steps, tr.value, tr.direction, tr.pass_index, rig.sections, rig["counter"])
+    assert r["spacing_steps_u"] >= r["spacing_steps_u_fit"]
+    assert abs(r["spacing_steps"] - truth["spacing_steps"]) <= 3 * r["spacing_steps_u"]
