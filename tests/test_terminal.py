@@ -1,4 +1,5 @@
 """The dashboard in a real terminal: tmux runs `modetick sweep` in an 80x24 pane."""
+import re
 import shutil
 import subprocess
 import sys
@@ -20,7 +21,7 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
     session = f"modetick-test-{int(time.time() * 1000) % 10**8}"
     log = tmp_path / "live.db"
     cmd = (f"cd {ROOT} && {sys.executable} -m daq sweep --log {log} "
-           f"--set sweep.settle_s=0.004; echo EXIT=$?; sleep 30")
+           f"--set sweep.settle_s=0.004 --set sweep.passes=4; echo EXIT=$?; sleep 30")
     _tmux("new-session", "-d", "-s", session, "-x", "80", "-y", "24", cmd)
     try:
         screen = ""
@@ -34,6 +35,21 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
         assert "modetick sweep · running" in screen
         lines = screen.splitlines()
         assert len(lines) <= 24 and all(len(l) <= 80 for l in lines)
+        # p pauses (the dashboard says so and the sample count stands still), p again resumes.
+        _tmux("send-keys", "-t", session, "p")
+        deadline = time.time() + 10
+        while time.time() < deadline and "PAUSED" not in screen:
+            time.sleep(0.3)
+            screen = _tmux("capture-pane", "-p", "-t", session).stdout
+        assert "PAUSED" in screen, screen
+        progress = lambda text: re.search(r"(\d+)/\d+ samples", text).group(1)  # noqa: E731
+        first = progress(screen)
+        time.sleep(1.0)
+        assert progress(_tmux("capture-pane", "-p", "-t", session).stdout) == first
+        _tmux("send-keys", "-t", session, "p")
+        time.sleep(1.0)
+        screen = _tmux("capture-pane", "-p", "-t", session).stdout
+        assert "PAUSED" not in screen and int(progress(screen)) > int(first)
         # The q key stops the run cleanly after the current step: exit 130, log kept.
         _tmux("send-keys", "-t", session, "q")
         deadline = time.time() + 20

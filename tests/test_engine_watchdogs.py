@@ -1,0 +1,82 @@
+"""Engine watchdogs on the simulated rig: full disk, a stage that does not get there, a stuck detector."""
+import pytest
+
+from analysis.counter import StreamCounter
+from daq import engine as engine_mod
+from daq.engine import Engine, LiveState
+from daq.rig import load_rig
+from daq.runlog import RunLog
+from drivers.base import DeviceError, Reading
+from drivers.registry import open_devices
+
+
+def _engine(tmp_path, rig, stage=None, detector=None):
+    s, d, _ = open_devices(rig.sections)
+    log = RunLog.create(tmp_path / "run.db", rig)
+    return Engine(rig, stage or s, detector or d, StreamCounter(rig["counter"]), log, LiveState()), log
+
+
+def test_low_disk_stops_the_run_and_keeps_the_samples(tmp_path, monkeypatch):
+    rig = load_rig(None, ["sweep.settle_s=0"])
+    eng, log = _engine(tmp_path, rig)
+    # The real disk check, with the threshold set above any disk's free space.
+    monkeypatch.setattr(engine_mod, "MIN_FREE_BYTES", 10**18)
+    with pytest.raises(DeviceError, match="disk: only"):
+        eng.run()
+    assert log.n_samples > 0 and len(log.read_samples()) == log.n_samples
+
+
+class LazyStage:
+    """A stage whose controller stops 5 steps short of every target (a stalled screw)."""
+
+    name = "lazy"
+
+    def __init__(self, inner):
+        self.inner, self.pos = inner, 0
+
+    def identify(self):
+        return "lazy"
+
+    def move_to(self, target):
+        self.inner.move_to(target)
+        self.pos = target - 5
+
+    def position_steps(self):
+        return self.pos
+
+    def stop(self):
+        pass
+
+    def close(self):
+        pass
+
+
+def test_stage_that_does_not_reach_its_target_faults_at_the_turn(tmp_path):
+    rig = load_rig(None, ["sweep.settle_s=0"])
+    s, _, _ = open_devices(rig.sections)
+    eng, log = _engine(tmp_path, rig, stage=LazyStage(s))
+    with pytest.raises(DeviceError, match="did not reach its target"):
+        eng.run()
+    # The fault comes at the first turning point, with the whole first pass logged.
+    assert log.n_samples == 4001
+
+
+class StuckDetector:
+    name = "stuck"
+
+    def identify(self):
+        return "stuck"
+
+    def read(self):
+        return Reading(0.25)
+
+    def close(self):
+        pass
+
+
+def test_detector_returning_one_value_is_warned_about(tmp_path):
+    rig = load_rig(None, ["sweep.settle_s=0", "sweep.stop=2000", "sweep.passes=1"])
+    eng, log = _engine(tmp_path, rig, detector=StuckDetector())
+    assert eng.run() == "finished"
+    warnings = [e for e in log.events("warning") if "times in a row" in (e["detail"] or "")]
+    assert len(warnings) == 1
