@@ -510,6 +510,8 @@ class StreamCounter:
         # crossings of the current and the previous run: [[ks], [centres], [heights], dir, [reliable]]
         self._run_cur: list[list] = []
         self._run_prev: list[list] = []
+        self._prev_arrays: tuple | None = None   # _run_arrays(_run_prev), once made
+        self._cur_arrays: tuple | None = None
         self._n_cross = 0
         self._table = _ModeTable()
         self._records: list[tuple] = []
@@ -1420,6 +1422,7 @@ class StreamCounter:
         self._finalise_pending()
         kl = self._L["k"] if self._L else 0
         self._out.append(Event("reversal", int(idx), float(pos), int(newdir), int(kl), 0.0, 0.0))
+        self._cur_arrays = None
         pairs = self._pairs(self._run_cur, self._run_prev)
         if pairs.size:
             self._bpairs.extend(pairs.tolist())
@@ -1427,6 +1430,7 @@ class StreamCounter:
             self._b = _median(pairs.tolist()) if pairs.size >= 3 else _median(self._bpairs)
         if self._run_cur:
             self._run_prev = self._run_cur
+            self._prev_arrays = self._cur_arrays     # None: made when first needed
         self._run_cur = []
         self._run += 1
         self._lastrev = (int(idx), float(pos), int(newdir))
@@ -1444,18 +1448,27 @@ class StreamCounter:
     @staticmethod
     def _run_arrays(run: list):
         """(k, centre, direction) of a run's trusted crossings, as arrays."""
-        k = np.concatenate([np.asarray(r[0], np.int64) for r in run])
-        c = np.concatenate([np.asarray(r[1], float) for r in run])
-        d = np.concatenate([np.full(len(r[0]), r[3]) for r in run])
-        rel = np.concatenate([np.asarray(r[4], bool) for r in run])
-        return k[rel], c[rel], d[rel]
+        # flattened in Python first: most entries hold a single crossing
+        k, c, d, rel = [], [], [], []
+        for r in run:
+            k += r[0]
+            c += r[1]
+            d += [r[3]] * len(r[0])
+            rel += r[4]
+        rel = np.array(rel, bool)
+        return (np.array(k, np.int64)[rel], np.array(c, float)[rel],
+                np.array(d, np.int64)[rel])
 
     def _pairs(self, cur: list, prev: list) -> np.ndarray:
         """Backlash estimates d * (centre in this run - centre in the previous run), per mode."""
         if not cur or not prev:
             return np.zeros(0)
         kc, cc, dc = self._run_arrays(cur)
-        kp, cp, dp = self._run_arrays(prev)
+        # the previous run's arrays were made when it was the current one
+        if self._prev_arrays is None:
+            self._prev_arrays = self._run_arrays(prev)
+        kp, cp, dp = self._prev_arrays
+        self._cur_arrays = (kc, cc, dc)
         if kc.size == 0 or kp.size == 0:
             return np.zeros(0)
         # the last crossing of each mode in the previous run (as a dict would keep it)
