@@ -312,6 +312,10 @@ class _ModeTable:
             return
         kmin, kmax = int(k.min()), int(k.max())
         self._grow(kmin, kmax)
+        dk = np.diff(k)
+        if k.size > 1 and ((dk > 0).all() or (dk < 0).all()):     # one pass: modes in order
+            self._add_distinct(k, d, pos, h, w, reliable)
+            return
         i = k - kmin
         sl = slice(kmin - self.off, kmax - self.off + 1)
         n = kmax - kmin + 1
@@ -328,6 +332,35 @@ class _ModeTable:
                 self.cnt[row, sl] += np.bincount(ii, minlength=n)
                 self.sum[row, sl] += np.bincount(ii, weights=pp, minlength=n)
                 self.sq[row, sl] += np.bincount(ii, weights=pp * pp, minlength=n)
+
+    def _add_distinct(self, k, d, pos, h, w, reliable) -> None:
+        """add() for modes in strict order (one pass): each mode gets one value.
+
+        bincount's per-mode sum is then 0.0 + v, which is v exactly, and adding
+        0.0 where nothing was selected leaves a sum unchanged (the tables never
+        hold -0.0), so the tables come out bit-identical to add().
+        """
+        h = np.asarray(h, float)
+        w = np.asarray(w, float)
+        p = np.asarray(pos, float)
+        rel = np.asarray(reliable, bool)
+        d = np.broadcast_to(np.asarray(d), k.shape)
+        if k[0] > k[-1]:                  # downward: walk it upward so the modes form a slice
+            k, h, w, p, rel, d = k[::-1], h[::-1], w[::-1], p[::-1], rel[::-1], d[::-1]
+        j0 = int(k[0]) - self.off
+        if int(k[-1]) - int(k[0]) == k.size - 1:
+            j = slice(j0, j0 + k.size)     # consecutive modes: views, no fancy indexing
+        else:
+            j = k - self.off
+        self.seen[j] += 1.0
+        self.hsum[j] += h
+        self.wsum[j] += w
+        self.strong[j] += rel
+        pp = p * p
+        for row, sel in ((0, rel & (d > 0)), (1, rel & (d < 0))):
+            self.cnt[row, j] += sel
+            self.sum[row, j] += np.where(sel, p, 0.0)
+            self.sq[row, j] += np.where(sel, pp, 0.0)
 
     def to_state(self) -> dict:
         return {"off": self.off, "cnt": self.cnt.tolist(), "sum": self.sum.tolist(),
@@ -1401,11 +1434,12 @@ class StreamCounter:
         hl = hs.tolist()
         wl = ws.tolist()
         self._out.extend(map(Event, ["blip"] * n, peaks.tolist(), cl, [int(d)] * n, kl, hl, wl))
-        self._table.add(ks, np.full(n, d), cens, hs, ws, ~weak)
-        self._records.append((ks, peaks, starts, ends, cens, np.full(n, d), hs, ws, areas, parts,
+        strong = ~weak
+        dd = np.full(n, d)
+        self._table.add(ks, dd, cens, hs, ws, strong)
+        self._records.append((ks, peaks, starts, ends, cens, dd, hs, ws, areas, parts,
                               weak.copy(), np.full(n, self._run)))
         self._n_cross += n
-        strong = ~weak
         self._run_cur.append([kl, cl, hl, int(d), strong.tolist()])
         si = np.flatnonzero(strong)
         if si.size:
