@@ -251,7 +251,7 @@ class SimCameraDetector:
         return "simulated camera (frames rendered by the simulated bench)"
 
     def read(self) -> Reading:
-        return self.reducer.reduce(self.bench.render_frame())
+        return self.reducer.reduce(self.bench.capture_frame())
 
     def close(self) -> None:
         pass

@@ -166,6 +166,13 @@ class SimBench:
         self.frames += 1
         return cam.render(power, angle, noise)
 
+    def capture_frame(self) -> np.ndarray:
+        """A camera frame taken as a reading: like render_frame, but the simulated
+        clock moves on one read, so 1/f noise and drift change from frame to frame."""
+        frame = self.render_frame()
+        self.reads += 1
+        return frame
+
     def truth(self) -> dict:
         """What a counter should find in the rig's [sweep] (see sims.truth)."""
         if self._truth is None:

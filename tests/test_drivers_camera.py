@@ -156,3 +156,16 @@ def test_sim_camera_peaks_sit_on_the_simulated_modes():
     centres = [c for c in bench.truth()["mode_centres_steps"] if 1005 <= c <= 1395]
     assert len(found) == len(centres) >= 7
     assert np.abs(found - np.array(centres)).max() <= 2.0
+
+
+def test_sim_camera_frames_advance_the_simulated_clock():
+    # Each frame is a reading: the simulated clock (and with it 1/f noise and drift) moves on.
+    from daq.rig import load_rig
+    from drivers.registry import open_devices
+    from pathlib import Path
+    rig = load_rig(Path(__file__).resolve().parent.parent / "configs" / "sim-camera.toml", ["sweep.settle_s=0.01"])
+    stage, det, bench = open_devices(rig.sections)
+    t0 = bench.time_s()
+    det.read()
+    det.read()
+    assert bench.time_s() == pytest.approx(t0 + 2 * bench.dt_s)
