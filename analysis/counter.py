@@ -406,10 +406,11 @@ def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = N
                 ) -> tuple[float | None, float | None, dict]:
     """Spacing = slope of blip centre against mode number at the middle of the range.
 
-    A quadratic is fitted (the spacing in steps changes across a wide sweep,
-    Littrow tuning is not linear in angle), centred on the middle mode so the
-    linear coefficient is the spacing there; its standard error comes from the
-    residual scatter. Fewer than 6 modes: a straight line; fewer than 3: None.
+    A cubic is fitted from 20 modes on, a quadratic from 6 (the spacing in steps
+    changes across a wide sweep: Littrow tuning is not linear in angle, and the
+    group index varies), centred on the middle mode so the linear coefficient
+    is the spacing there; its standard error comes from the residual scatter.
+    Fewer than 6 modes: a straight line; fewer than 3: None.
     Returns (spacing, standard error, details).
     """
     k = np.asarray(k, float)
@@ -421,7 +422,9 @@ def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = N
         return None, None, {}
     kc = 0.5 * (k.min() + k.max())
     x = k - kc
-    deg = 2 if k.size >= 6 else 1
+    # Littrow tuning (a sine) and the chip's dispersion bend the centres smoothly: a cubic
+    # takes that up when there are modes enough, so the residuals are scatter, not model.
+    deg = 3 if k.size >= 20 else (2 if k.size >= 6 else 1)
     keep = np.ones(k.size, bool)
     for _ in range(3):   # drop gross outliers (a centre pulled by a kick or a glitch)
         coef, cov, resid = _wls(x[keep], c[keep], w[keep], deg)
