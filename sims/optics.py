@@ -1,4 +1,4 @@
-"""Textbook relations the simulated laser is built from (scalar or numpy via ``xp``).
+"""Published relations the simulated laser is built from (scalar or numpy via ``xp``).
 
 - Grating equation, order m, groove spacing d: m lambda = d (sin alpha + sin beta);
   in Littrow (alpha = beta = theta) m lambda = 2 d sin theta, and the tuning rate

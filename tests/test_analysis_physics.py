@@ -33,9 +33,9 @@ def test_littrow_wavelength_hand_worked():
 
 
 def test_mode_spacing_and_length_hand_worked():
-    # Textbook-style example (formula: Saleh & Teich; Coldren et al.): a 300 um chip with
-    # group index 3.6 at 1550 nm: delta_lambda = 1550^2 / (2 * 3.6 * 300e3) nm
-    # = 2402500 / 2160000 = 1.112269 nm (worked by hand). And back again.
+    # Worked by hand with the published formula (Saleh & Teich; Coldren et al.): a 300 um
+    # chip with group index 3.6 at 1550 nm: delta_lambda = 1550^2 / (2 * 3.6 * 300e3) nm
+    # = 2402500 / 2160000 = 1.112269 nm. And back again.
     dlam = 1550.0 ** 2 / (2 * 3.6 * 300e3)
     assert dlam == pytest.approx(1.112269, abs=1e-6)
     assert physics.chip_length_um(1550.0, 1.112269, 3.6) == pytest.approx(300.0, abs=1e-3)

@@ -1,6 +1,6 @@
 """[aux] readbacks, [detector] reads_per_step and open_devices, over real ptys and pyvisa.
 
-Safety rule under test (common practice, see FIELD-NOTES): nothing is ever
+Safety rule under test (common practice): nothing is ever
 written to the laser's current/temperature controller unless the rig file
 allows it, and then only within the limits given beside the value.
 """

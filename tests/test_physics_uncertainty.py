@@ -7,7 +7,7 @@ from scipy.optimize import brentq
 from uncertainties import ufloat, umath
 
 from analysis import physics
-from analysis.pipeline import calibrated_results, directions_from_positions
+from analysis.pipeline import calibrated_results
 from analysis.uncertainty import Input, gum, monte_carlo
 
 
@@ -36,14 +36,14 @@ def test_tuning_rate_is_the_derivative():
 
 
 def test_chip_length_hand_worked():
-    # delta_lambda = lambda^2 / (2 n_g L) (Saleh & Teich; Coldren et al.). By hand:
-    # 1550 nm, n_g = 3.6, L = 300 um: 1550^2 / (2 * 3.6 * 300000) = 2402500 / 2160000 = 1.11227 nm,
-    # the ~1.1 nm spacing of a 300 um telecom Fabry-Perot chip (from memory).
-    assert physics.chip_length_um(1550.0, 1.112268518, 3.6) == pytest.approx(300.0, rel=1e-8)
+    # delta_lambda = lambda^2 / (2 n_g L) (Saleh & Teich; Coldren et al.). By hand, for a
+    # 1310 nm chip of our own, n_g = 3.58, L = 450 um:
+    # 1310^2 / (2 * 3.58 * 450000) = 1716100 / 3222000 = 0.5326195 nm.
+    assert physics.chip_length_um(1310.0, 0.5326195, 3.58) == pytest.approx(450.0, rel=1e-6)
 
 
 def test_group_index_not_phase_index():
-    # Using n instead of n_g is wrong by n_g/n (field notes; Coldren et al.).
+    # Using n instead of n_g is wrong by n_g/n (Coldren et al., group index and mode spacing).
     L_g = physics.chip_length_um(940.0, 0.15, 3.64)
     L_n = physics.chip_length_um(940.0, 0.15, 3.41)
     assert L_n / L_g == pytest.approx(3.64 / 3.41)
@@ -93,13 +93,6 @@ def test_calibrated_results_budget_names_rig_keys():
     names = [b["input"] for b in r["budget"]]
     assert "[chip] group_index" in names and "[stage] deg_per_step" in names
     assert r["length_um_u"] == pytest.approx(r["length_um_monte_carlo"]["u"], rel=0.05)
-
-
-def test_directions_from_positions():
-    pos = np.array([0, 1, 2, 2, 3, 2, 1, 1, 0, 1])
-    d, p = directions_from_positions(pos)
-    assert d.tolist() == [1, 1, 1, 1, 1, -1, -1, -1, -1, 1]
-    assert p.tolist() == [0, 0, 0, 0, 0, 1, 1, 1, 1, 2]
 
 
 def test_spacing_uncertainty_covers_pass_to_pass_scatter():

@@ -95,7 +95,7 @@ def test_truth_rule():
     lam = t["wavelength_nm"]
     assert t["spacing_nm"] == pytest.approx(lam ** 2 / (2 * t["group_index"] * t["length_um"] * 1e3), rel=1e-12)
     assert t["spacing_steps"] * t["tuning_nm_per_step"] == pytest.approx(t["spacing_nm"], rel=2e-3)
-    # Chip length back from the count (field notes: L = N lambda^2 / (2 n_g W)).
+    # Chip length back from the count: L = N lambda^2 / (2 n_g W) (from delta_lambda = lambda^2/(2 n_g L), Saleh & Teich).
     w_nm = (t["modes"] - 1) * t["spacing_steps"] * t["tuning_nm_per_step"]
     assert (t["modes"] - 1) * lam ** 2 / (2 * t["group_index"] * w_nm) / 1e3 == pytest.approx(797.02, rel=3e-3)
     # Undetectable modes are left out: below-threshold blips outside a narrow lasing range.
