@@ -139,7 +139,7 @@ def run(args) -> int:
 
     print(f"modetick: {PARK_SAFETY}", file=sys.stderr)
     try:
-        stage, detector, _bench = open_devices(rig.sections)
+        stage, detector, _bench = open_devices(rig.sections, write_setpoints=False)
     except DeviceError as exc:
         return fail(exc, 1)
     except OSError as exc:

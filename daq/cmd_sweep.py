@@ -36,8 +36,13 @@ class SignalStop:
         self.state = state
         self._old = {}
 
+    engine = None   # set once the engine exists: its hand-over section defers the abort
+
     def __call__(self, signum, frame) -> None:
         if self.signum is not None:
+            if self.engine is not None and self.engine.critical:
+                self.engine.abort_pending = True
+                return
             raise KeyboardInterrupt
         self.signum = signum
         self.state.status = "stopping"
@@ -81,11 +86,10 @@ def run(args) -> int:
         if args.resume:
             if args.config or args.log:
                 return fail("--resume takes the rig and the log from LOG; leave out --config and --log", 2)
+            if args.set:
+                return fail("--resume continues with the rig stored in the log; --set cannot change it", 2)
             resume_log = RunLog.open(args.resume, writable=True)
             rig = resume_log.rig()
-            if args.set:
-                from daq.rig import parse_rig
-                rig = parse_rig(rig.text, rig.source, rig.overrides + args.set)
         else:
             rig = load_rig(args.config, args.set)
     except (RigError, LogError) as exc:
@@ -100,6 +104,8 @@ def run(args) -> int:
         return fail(exc, 1)
     except OSError as exc:
         return fail(f"cannot open devices: {exc}", 1)
+    except KeyboardInterrupt:
+        return fail("interrupted while opening the devices; nothing was moved", 130)
 
     status, reason, code = "finished", "", 0
     log = engine = counter = None
@@ -121,6 +127,7 @@ def run(args) -> int:
             t0 = float(s_last.t_s[-1]) if len(s_last) else 0.0
         engine = Engine(rig, stage, detector, counter, log, state,
                         stop_flag=lambda: stopper.signum is not None, pause_flag=pause, t0_s=t0)
+        stopper.engine = engine
         if skip:
             if log.meta("status") == "finished":
                 return fail(f"log {log.path}: the run is already complete", 2)
@@ -155,6 +162,8 @@ def run(args) -> int:
                                 None, None, None, None, reason)], commit=True)
     except LogError as exc:
         return fail(exc, 2)
+    except Exception as exc:  # noqa: BLE001 - a bug or an unexpected I/O error: keep the log honest
+        status, reason, code = "faulted", f"unexpected error: {exc.__class__.__name__}: {exc}", 1
     finally:
         _safe_stop(stage, detector)
 
@@ -196,6 +205,8 @@ def _route_warnings(engine) -> None:
 
 def _resumed_counter(log, cls):
     blob = log.meta("counter_state")
+    if not blob and log.n_samples == 0:
+        return cls(log.rig()["counter"])     # killed before its first commit: start afresh
     if not blob:
         raise LogError(f"log {log.path}: holds no counter state to resume from")
     return cls.from_state(json.loads(blob))
@@ -205,8 +216,7 @@ def _reapproach(stage, rig, skip: int) -> None:
     """Move to the resume point from the sweep's direction, taking up backlash."""
     from daq import schedule
     nxt = next(schedule.moves(rig["sweep"], skip))
-    takeup = max(rig["sweep"]["overshoot_steps"], 2 * rig["sweep"]["step"], 50)
-    back = nxt.target_steps - nxt.direction * takeup
+    back = nxt.target_steps - nxt.direction * schedule.takeup_steps(rig["sweep"])
     lo, hi = rig["stage"]["min_steps"], rig["stage"]["max_steps"]
     if lo is not None:
         back = max(back, lo)

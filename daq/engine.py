@@ -13,7 +13,6 @@ import collections
 import math
 import queue
 import shutil
-import signal
 import sys
 import threading
 import time
@@ -33,7 +32,6 @@ STALL_READS = 500     # identical readings in a row before the detector is calle
 MIN_FREE_BYTES = 50_000_000
 POSITION_TOLERANCE_STEPS = 1
 SCAN_POLL_S = 0.05   # how often a scanning stage is asked where it is
-_HELD_SIGNALS = {signal.SIGINT, signal.SIGTERM}
 
 
 @dataclass
@@ -81,6 +79,7 @@ class _Writer:
         self._write = write
         self._q: queue.Queue = queue.Queue(maxsize=16)
         self.error: BaseException | None = None
+        self.failed = False   # once a write failed, nothing more is written (no retry on a bad disk)
         self._thread = threading.Thread(target=self._loop, name="modetick-writer", daemon=True)
         self._thread.start()
 
@@ -89,11 +88,11 @@ class _Writer:
             item = self._q.get()
             if item is None:
                 return
-            if self.error is None:
+            if not self.failed:
                 try:
                     self._write(item)
                 except BaseException as exc:  # noqa: BLE001 - handed to the loop's thread
-                    self.error = exc
+                    self.error, self.failed = exc, True
 
     def put(self, item) -> None:
         self.raise_error()
@@ -129,7 +128,10 @@ class Engine:
         self._n_written = log.n_samples   # samples handed to the writer so far (all runs of this log)
         self._writer: _Writer | None = None
         self._next_commit = 0.0
-        # Scan mode, resuming: the pass and position of the last logged sample.
+        self.critical = False          # inside the buffer hand-over (see flush)
+        self.abort_pending = False     # a second interrupt arrived during it
+        # Scan mode, resuming: the pass and position of the last logged sample
+        # (set by the caller from the log before run()).
         self._resume_pass, self._resume_pos = 0, None
         self._last_value = None
         self._same_count = 0
@@ -177,11 +179,17 @@ class Engine:
         writer.raise_error()
         return status
 
-    def _between_steps(self) -> None:
+    def _between_steps(self, can_pause: bool = True) -> None:
         if self.stop_flag():
             raise StopRequested
         if self.pause_flag is not None and self.pause_flag.is_set():
-            self._pause()
+            if can_pause:
+                self._pause()
+            else:
+                # A scanning stage keeps moving: pausing would leave a hole in the pass.
+                self.pause_flag.clear()
+                self._warn_once("scan-pause", "pause is not available during a continuous scan; "
+                                              "stop with q and resume the log instead")
 
     def _new_pass(self, pass_index: int, direction: int, target: int, announce: bool) -> None:
         if announce:
@@ -231,17 +239,19 @@ class Engine:
         pts = schedule.pass_points(sweep)
         first, last = pts[0], pts[-1]
         d0 = 1 if last > first else -1
-        take_up = max(sweep["overshoot_steps"], sweep["step"])
-        start_pass = 0
+        take_up = schedule.takeup_steps(sweep)
+        start_pass, resume_pos = 0, None
         if skip_recorded:
-            # Resume at the pass the last sample belongs to, from its start.
-            start_pass = self._resume_pass
+            # Resume in the pass of the last logged sample, one step past it.
+            start_pass, resume_pos = self._resume_pass, self._resume_pos
         read, clock = self.detector.read, time.monotonic
         for p in range(start_pass, sweep["passes"]):
             d = d0 if p % 2 == 0 else -d0
             begin, end = (first, last) if d == d0 else (last, first)
-            if skip_recorded and p == start_pass and self._resume_pos is not None:
-                begin = self._resume_pos
+            if p == start_pass and resume_pos is not None:
+                if (end - resume_pos) * d <= 0:
+                    continue          # that pass was complete
+                begin = resume_pos + d
             self._between_steps()
             self._new_pass(p, d, begin, p > 0)
             stage.move_to(self._clamp(begin - d * take_up))   # take up backlash
@@ -250,7 +260,7 @@ class Engine:
             t_q, p_q, moving = clock(), stage.position_steps(), True
             acc_pos, acc = None, []
             while True:
-                self._between_steps()
+                self._between_steps(can_pause=False)
                 r = read()
                 now = clock()
                 if now - t_q >= SCAN_POLL_S or not moving:
@@ -362,25 +372,25 @@ class Engine:
     def flush(self) -> None:
         """Hand the buffered chunk to the writer: counted and logged in one transaction.
 
-        Only the buffer swap happens here (SIGINT/SIGTERM held back meanwhile,
-        so a second Ctrl-C cannot split it and log a chunk twice); the
-        counting, the SQLite write and the counter-state snapshot run in the
-        writer thread, so the step or scan loop is never held up by them.
-        Without a running writer (before run() or after it) the chunk is
-        written here.
+        Only the buffer swap happens here; the counting, the SQLite write and
+        the counter-state snapshot run in the writer thread, so the step or
+        scan loop is never held up by them. The swap is a critical section:
+        a second Ctrl-C arriving in it is held (``abort_pending``) and raised
+        right after, so a chunk is never lost or logged twice. Without a
+        running writer (before run() or after it) the chunk is written here.
         """
-        in_main = threading.current_thread() is threading.main_thread()
-        if in_main:
-            signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
+        self.critical = True
         try:
             chunk = self._swap()
+            if self._writer is not None:
+                self._writer.put(chunk)
+            else:
+                self._write(chunk)
         finally:
-            if in_main:
-                signal.pthread_sigmask(signal.SIG_UNBLOCK, _HELD_SIGNALS)
-        if self._writer is not None:
-            self._writer.put(chunk)
-        else:
-            self._write(chunk)
+            self.critical = False
+        if self.abort_pending:
+            self.abort_pending = False
+            raise KeyboardInterrupt
 
     def _swap(self) -> tuple:
         buf = self._buf

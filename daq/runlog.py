@@ -144,7 +144,7 @@ class RunLog:
         path = Path(path)
         if not path.is_file():
             raise LogError(f"log {path}: no such file")
-        uri = f"file:{path.resolve()}" + ("" if writable else "?mode=ro")
+        uri = path.resolve().as_uri() + ("?mode=rw" if writable else "?mode=ro")
         try:
             conn = sqlite3.connect(uri, uri=True, check_same_thread=False)
             fmt = conn.execute("SELECT value FROM meta WHERE key='format'").fetchone()

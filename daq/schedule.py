@@ -50,3 +50,15 @@ def moves(sweep: dict, skip_recorded: int = 0) -> Iterator[Move]:
             seen += 1
         if over and p < sweep["passes"] - 1 and seen > skip_recorded:
             yield Move(seq[-1] + d * over, d, p, False)
+
+
+DEFAULT_TAKEUP_STEPS = 50   # travel that takes up the play of a typical screw mount (common practice)
+
+
+def takeup_steps(sweep: dict) -> int:
+    """How far to back off before approaching a point, to take up backlash.
+
+    The sweep's own overshoot when set, else twice the step, at least
+    DEFAULT_TAKEUP_STEPS.
+    """
+    return max(sweep["overshoot_steps"], 2 * sweep["step"], DEFAULT_TAKEUP_STEPS)

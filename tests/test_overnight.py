@@ -96,3 +96,32 @@ def test_sigterm_exits_143(tmp_path):
     code, out, err, log = _stop_with(signal.SIGTERM, tmp_path)
     assert code == 143, err
     assert json.loads(out)["status"] == "stopped"
+
+
+def test_second_interrupt_aborts_with_a_consistent_log(tmp_path):
+    # Two Ctrl-C in quick succession: exit 130 and a log whose samples are exactly a prefix
+    # of the schedule (none lost, none written twice), which SQLite checks as sound.
+    from daq.rig import load_rig
+    from daq.runlog import RunLog
+    from daq.schedule import moves
+    log = tmp_path / "abort.db"
+    proc = _sweep("--log", str(log), "--json", "--set", PACE)
+    _wait_for_samples(log, 1200, proc)
+    proc.send_signal(signal.SIGINT)
+    time.sleep(0.002)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    con = sqlite3.connect(log)
+    assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    con.close()
+    s = RunLog.open(log).read_samples()
+    want = [m.target_steps for m in moves(load_rig(None)["sweep"]) if m.record][: len(s)]
+    assert s.position_steps.tolist() == want and len(s) >= 1200
+
+
+def test_resume_refuses_overrides(tmp_path):
+    r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(tmp_path / "x.db"),
+                        "--set", "sweep.step=2"], cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "--set cannot change it" in r.stderr
