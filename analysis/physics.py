@@ -53,9 +53,9 @@ def angle_deg(steps: float, deg_per_step: float, angle_at_zero_deg: float) -> fl
     return angle_at_zero_deg + deg_per_step * steps
 
 
-def littrow_wavelength_nm(angle: float, lines_per_mm: float, order: int = 1) -> float:
+def littrow_wavelength_nm(angle_deg: float, lines_per_mm: float, order: int = 1) -> float:
     """m*lambda = 2*d*sin(theta), theta in degrees (Palmer)."""
-    return 2.0 * groove_spacing_nm(lines_per_mm) * math.sin(math.radians(angle)) / order
+    return 2.0 * groove_spacing_nm(lines_per_mm) * math.sin(math.radians(angle_deg)) / order
 
 
 def littrow_angle_deg(wavelength_nm: float, lines_per_mm: float, order: int = 1) -> float:
@@ -65,9 +65,9 @@ def littrow_angle_deg(wavelength_nm: float, lines_per_mm: float, order: int = 1)
     return math.degrees(math.asin(s))
 
 
-def tuning_nm_per_deg(angle: float, lines_per_mm: float, order: int = 1) -> float:
+def tuning_nm_per_deg(angle_deg: float, lines_per_mm: float, order: int = 1) -> float:
     """d(lambda)/d(theta) = 2*d*cos(theta)/m, per degree (Palmer)."""
-    return 2.0 * groove_spacing_nm(lines_per_mm) * math.cos(math.radians(angle)) / order * math.pi / 180.0
+    return 2.0 * groove_spacing_nm(lines_per_mm) * math.cos(math.radians(angle_deg)) / order * math.pi / 180.0
 
 
 def spacing_nm_at(spacing_steps: float, centre_steps: float, deg_per_step: float, angle_at_zero_deg: float,
