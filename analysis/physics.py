@@ -10,12 +10,15 @@ Relations (standard sources):
   Integrated Circuits). Hence L = lambda^2 / (2*n_g*delta_lambda).
 
 Units: steps, degrees, lines per mm, nm, um. The stage calibration is linear:
-angle_deg = angle_at_zero_deg + deg_per_step * steps.
+angle_deg = angle_at_zero_deg + deg_per_step * steps. The forward chain takes
+floats or numpy arrays alike (the Monte Carlo check evaluates it on arrays).
 """
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+
+import numpy as np
 
 
 @dataclass(frozen=True)
@@ -55,7 +58,7 @@ def angle_deg(steps: float, deg_per_step: float, angle_at_zero_deg: float) -> fl
 
 def littrow_wavelength_nm(angle_deg: float, lines_per_mm: float, order: int = 1) -> float:
     """m*lambda = 2*d*sin(theta), theta in degrees (Palmer)."""
-    return 2.0 * groove_spacing_nm(lines_per_mm) * math.sin(math.radians(angle_deg)) / order
+    return 2.0 * groove_spacing_nm(lines_per_mm) * np.sin(np.radians(angle_deg)) / order
 
 
 def littrow_angle_deg(wavelength_nm: float, lines_per_mm: float, order: int = 1) -> float:
@@ -79,7 +82,7 @@ def spacing_nm_at(spacing_steps: float, centre_steps: float, deg_per_step: float
     """
     half = 0.5 * spacing_steps
     lam = lambda s: littrow_wavelength_nm(angle_deg(s, deg_per_step, angle_at_zero_deg), lines_per_mm, order)  # noqa: E731
-    return abs(lam(centre_steps + half) - lam(centre_steps - half)), lam(centre_steps)
+    return np.abs(lam(centre_steps + half) - lam(centre_steps - half)), lam(centre_steps)
 
 
 def chip_length_um(wavelength_nm: float, spacing_nm: float, group_index: float) -> float:

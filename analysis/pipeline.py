@@ -182,14 +182,8 @@ def calibrated_results(cal: physics.Calibration, chip: dict, spacing_steps: floa
     def length_f(sp, c, k, a0, lpm, ng):
         return physics.length_from_steps(sp, c, k, a0, lpm, ng, order)
 
-    def length_vec(sp, c, k, a0, lpm, ng):
-        d = 1e6 / lpm
-        lam = lambda s: 2 * d * np.sin(np.radians(a0 + k * s)) / order  # noqa: E731
-        dl = np.abs(lam(c + sp / 2) - lam(c - sp / 2))
-        return lam(c) ** 2 / (2 * ng * dl) / 1000.0
-
-    sp_nm, lam = physics.spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step, cal.angle_at_zero_deg,
-                                       cal.lines_per_mm, order)
+    sp_nm, lam = (float(v) for v in physics.spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step,
+                                                          cal.angle_at_zero_deg, cal.lines_per_mm, order))
     chip = chip or {}
     ng = chip.get("group_index")
     ng_in = ng if ng else 1.0
@@ -203,7 +197,7 @@ def calibrated_results(cal: physics.Calibration, chip: dict, spacing_steps: floa
     out["wavelength_nm_u"] = gum(lam_f, inputs)[1]
     if ng:
         L, L_u, budget = gum(length_f, inputs)
-        mc = monte_carlo(length_vec, inputs, draws=mc_draws)
+        mc = monte_carlo(length_f, inputs, draws=mc_draws)   # the same chain, on arrays
         out.update(length_um=L, length_um_u=L_u, budget=budget, length_um_monte_carlo=mc)
     return out
 

@@ -73,13 +73,13 @@ def analyze_file(path: str, config: str | None = None, overrides: list[str] | No
     Raises RigError / LogError (one line each) for unusable input.
     """
     from analysis.pipeline import analyze_trace
-    from daq.summary import _clean
+    from daq.summary import json_ready
     (pos, val, direction, pass_index), sections, log = load_input(path, config, overrides or [])
     if len(val) == 0:
         raise LogError(f"{path}: holds no samples")
     result = analyze_trace(pos, val, direction=direction, pass_index=pass_index, sections=sections,
                            counter_settings=(sections or {}).get("counter"))
-    result = _clean(dict(result))
+    result = json_ready(dict(result))
     result["samples"] = int(len(val))
     if log is not None:
         result["status"] = log.meta("status")

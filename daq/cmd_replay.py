@@ -46,7 +46,7 @@ def replay_rig(log: RunLog, overrides: list[str]):
 
 def summarise(log: RunLog, sections: dict, status: str, counter, refine: bool) -> dict:
     """The same keys as ``sweep --json``; the spacing refined offline when ``refine``."""
-    from daq.summary import CALIBRATED_KEYS, CORE_KEYS, _clean, build_summary
+    from daq.summary import CALIBRATED_KEYS, CORE_KEYS, json_ready, build_summary
     if refine:
         out = build_summary(log, sections, status, counter=counter)
         out["refined"] = True
@@ -64,7 +64,7 @@ def summarise(log: RunLog, sections: dict, status: str, counter, refine: bool) -
     out["refined"] = False
     ordered = {k: out[k] for k in CORE_KEYS + CALIBRATED_KEYS if k in out}
     ordered.update({k: v for k, v in out.items() if k not in ordered})
-    return _clean(ordered)
+    return json_ready(ordered)
 
 
 def _calibrated_view(spacing, spacing_u, sections) -> dict | None:

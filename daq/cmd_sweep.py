@@ -137,7 +137,7 @@ def run(args) -> int:
             else:
                 if skip >= schedule.recorded_count(rig["sweep"]):
                     return fail(f"log {log.path}: the run is already complete", 2)
-                _reapproach(stage, rig, skip)
+                engine.reapproach(skip)
             engine.note("status", f"resumed after {skip} samples")
         log.set_meta(status="running")
         _route_warnings(engine)
@@ -210,19 +210,6 @@ def _resumed_counter(log, cls):
     if not blob:
         raise LogError(f"log {log.path}: holds no counter state to resume from")
     return cls.from_state(json.loads(blob))
-
-
-def _reapproach(stage, rig, skip: int) -> None:
-    """Move to the resume point from the sweep's direction, taking up backlash."""
-    from daq import schedule
-    nxt = next(schedule.moves(rig["sweep"], skip))
-    back = nxt.target_steps - nxt.direction * schedule.takeup_steps(rig["sweep"])
-    lo, hi = rig["stage"]["min_steps"], rig["stage"]["max_steps"]
-    if lo is not None:
-        back = max(back, lo)
-    if hi is not None:
-        back = min(back, hi)
-    stage.move_to(back)
 
 
 def _safe_stop(stage, detector) -> None:

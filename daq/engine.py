@@ -286,6 +286,12 @@ class Engine:
                 self._take(acc_pos, d, p, _mean_reading(acc))
             self._check_position(end)
 
+    def reapproach(self, skip_recorded: int) -> None:
+        """Before resuming: back off and come to the next point from the sweep's
+        direction, so the backlash is taken up as in an uninterrupted run."""
+        nxt = next(schedule.moves(self.rig["sweep"], skip_recorded))
+        self.stage.move_to(self._clamp(nxt.target_steps - nxt.direction * schedule.takeup_steps(self.rig["sweep"])))
+
     def _clamp(self, target: int) -> int:
         lo, hi = self.rig["stage"]["min_steps"], self.rig["stage"]["max_steps"]
         if lo is not None:

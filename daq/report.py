@@ -74,7 +74,7 @@ def open_analyzed(path: str, config: str | None = None, overrides: list[str] | N
     from analysis.pipeline import analyze_trace, count
     from daq.cmd_analyze import log_rig
     from daq.rig import load_rig
-    from daq.summary import _clean
+    from daq.summary import json_ready
 
     log = RunLog.open(path)
     try:
@@ -85,7 +85,7 @@ def open_analyzed(path: str, config: str | None = None, overrides: list[str] | N
         settings = rig.sections.get("counter")
         result = analyze_trace(s.position_steps, s.value, direction=s.direction,
                                pass_index=s.pass_index, sections=rig.sections, counter_settings=settings)
-        result = _clean(dict(result))
+        result = json_ready(dict(result))
         result["samples"] = int(len(s))
         result["status"] = log.meta("status")
         result["log"] = str(log.path)

@@ -94,8 +94,8 @@ class Rig:
                            "sections": self.sections}, sort_keys=True)
 
     def calibrated(self) -> bool:
-        s, g = self.sections["stage"], self.sections["grating"]
-        return None not in (s["deg_per_step"], s["angle_at_zero_deg"], g["lines_per_mm"])
+        from analysis.physics import Calibration
+        return Calibration.from_sections(self.sections) is not None
 
 
 def default_rig_path() -> Path:

@@ -11,12 +11,12 @@ CORE_KEYS = ("modes", "crossings", "spacing_steps", "spacing_steps_u", "samples"
 CALIBRATED_KEYS = ("spacing_nm", "spacing_nm_u", "wavelength_nm", "length_um", "length_um_u")
 
 
-def _clean(x: Any) -> Any:
+def json_ready(x: Any) -> Any:
     """JSON-safe: NaN/inf become None, numpy scalars become Python numbers."""
     if isinstance(x, dict):
-        return {k: _clean(v) for k, v in x.items()}
+        return {k: json_ready(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
-        return [_clean(v) for v in x]
+        return [json_ready(v) for v in x]
     if hasattr(x, "item") and not isinstance(x, (str, bytes)):
         x = x.item()
     if isinstance(x, float) and not math.isfinite(x):
@@ -52,10 +52,8 @@ def build_summary(log: RunLog, sections: dict, status: str, counter=None, bench=
     out["log"] = str(log.path)
     if reason:
         out["reason"] = reason
-    calibrated = all(x is not None for x in (sections["stage"]["deg_per_step"],
-                                             sections["stage"]["angle_at_zero_deg"],
-                                             sections["grating"]["lines_per_mm"]))
-    if not calibrated:
+    from analysis.physics import Calibration
+    if Calibration.from_sections(sections) is None:
         for k in CALIBRATED_KEYS:
             out.pop(k, None)
     if bench is not None:
@@ -65,4 +63,4 @@ def build_summary(log: RunLog, sections: dict, status: str, counter=None, bench=
     # Readers look for these first.
     ordered = {k: out[k] for k in CORE_KEYS + CALIBRATED_KEYS if k in out}
     ordered.update({k: v for k, v in out.items() if k not in ordered})
-    return _clean(ordered)
+    return json_ready(ordered)
