@@ -45,6 +45,8 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
+from analysis.modefit import fit_spacing, mechanical_centres
+
 # [counter] rig keys and their defaults (schema format of daq/rig.py).
 SETTINGS: dict[str, Any] = {
     "hi_sigma": 5.0,          # trigger: baseline + hi_sigma * noise
@@ -402,65 +404,6 @@ def _median(v) -> float:
     return float(s[n // 2]) if n % 2 else 0.5 * (float(s[n // 2 - 1]) + float(s[n // 2]))
 
 
-def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = None
-                ) -> tuple[float | None, float | None, dict]:
-    """Spacing = slope of blip centre against mode number at the middle of the range.
-
-    A cubic is fitted from 20 modes on, a quadratic from 6 (the spacing in steps
-    changes across a wide sweep: Littrow tuning is not linear in angle, and the
-    group index varies), centred on the middle mode so the linear coefficient
-    is the spacing there; its standard error comes from the residual scatter.
-    Fewer than 6 modes: a straight line; fewer than 3: None.
-    Returns (spacing, standard error, details).
-    """
-    k = np.asarray(k, float)
-    c = np.asarray(centre, float)
-    w = np.ones_like(k) if weight is None else np.asarray(weight, float)
-    ok = np.isfinite(c) & np.isfinite(k) & (w > 0)
-    k, c, w = k[ok], c[ok], w[ok]
-    if k.size < 3:
-        return None, None, {}
-    kc = 0.5 * (k.min() + k.max())
-    x = k - kc
-    # Littrow tuning (a sine) and the chip's dispersion bend the centres smoothly: a cubic
-    # takes that up when there are modes enough, so the residuals are scatter, not model.
-    deg = 3 if k.size >= 20 else (2 if k.size >= 6 else 1)
-    keep = np.ones(k.size, bool)
-    for _ in range(3):   # drop gross outliers (a centre pulled by a kick or a glitch)
-        coef, cov, resid = _wls(x[keep], c[keep], w[keep], deg)
-        r_all = c - np.polyval(coef, x)
-        mad = 1.4826 * np.median(np.abs(r_all[keep] - np.median(r_all[keep])))
-        limit = max(5.0 * mad, 1e-9)
-        new = np.abs(r_all) <= limit
-        if new.sum() < deg + 2 or np.array_equal(new, keep):
-            break
-        keep = new
-    coef, cov, resid = _wls(x[keep], c[keep], w[keep], deg)
-    slope = coef[-2]
-    se = math.sqrt(max(cov[-2, -2], 0.0))
-    details = {"k_centre": kc, "degree": deg, "coef": coef.tolist(),
-               "n_modes": int(keep.sum()), "outliers": int((~keep).sum()),
-               "residual_rms_steps": float(np.sqrt(np.mean(resid ** 2))) if resid.size else 0.0,
-               "centre_steps": float(np.polyval(coef, 0.0))}
-    return abs(float(slope)), se, details
-
-
-def _wls(x, y, w, deg):
-    """Weighted least squares polynomial (highest power first), covariance from residuals."""
-    A = np.vander(x, deg + 1)
-    sw = np.sqrt(w)
-    Aw, yw = A * sw[:, None], y * sw
-    coef, *_ = np.linalg.lstsq(Aw, yw, rcond=None)
-    resid = y - A @ coef
-    dof = max(x.size - (deg + 1), 1)
-    s2 = float(np.sum(w * resid ** 2) / dof)
-    try:
-        cov = np.linalg.inv(Aw.T @ Aw) * s2
-    except np.linalg.LinAlgError:
-        cov = np.full((deg + 1, deg + 1), np.inf)
-    return coef, cov, resid
-
-
 class StreamCounter:
     """Counts chip modes in a stream of (commanded position, direction, value) samples.
 
@@ -808,7 +751,6 @@ class StreamCounter:
             # merge overlapping or touching block ranges
             reach = np.maximum.accumulate(r1)
             brk = np.concatenate(([True], r0[1:] > reach[:-1]))
-            gid = np.cumsum(brk) - 1
             m0 = r0[brk]
             m1 = np.maximum.reduceat(r1, np.flatnonzero(brk))
             s0 = m0 * BLOCK
@@ -1780,25 +1722,3 @@ def _plain(v: Any) -> Any:
     if isinstance(v, np.generic):
         return v.item()
     return v
-
-
-def mechanical_centres(mc: dict) -> tuple[float | None, np.ndarray]:
-    """Backlash (median up-minus-down centre offset) and one centre per mode.
-
-    The mechanical centre is the mean of the up and down centres (or one of
-    them moved by half the backlash), i.e. the position the mode would have
-    with the play of the mount split evenly between the directions.
-    """
-    up, dn = mc["centre_up"], mc["centre_down"]
-    both = np.isfinite(up) & np.isfinite(dn)
-    backlash = float(np.median(up[both] - dn[both])) if both.any() else None
-    b2 = 0.0 if backlash is None else backlash / 2
-    nu, nd = mc["n_up"], mc["n_down"]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mech = np.where(both, ((up - b2) * nu + (dn + b2) * nd) / (nu + nd),
-                        np.where(np.isfinite(up), up - b2, dn + b2))
-    if backlash is None and np.isfinite(up).any() and np.isfinite(dn).any():
-        # both directions seen but never the same mode: keep the larger set only
-        keep_up = np.isfinite(up).sum() >= np.isfinite(dn).sum()
-        mech = np.where(np.isfinite(up) if keep_up else np.isfinite(dn), mech, np.nan)
-    return backlash, mech

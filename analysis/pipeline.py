@@ -22,7 +22,8 @@ from typing import Any
 import numpy as np
 
 from analysis import physics
-from analysis.counter import StreamCounter, fit_spacing, mechanical_centres
+from analysis.counter import StreamCounter
+from analysis.modefit import fit_spacing, mechanical_centres
 from analysis.uncertainty import Input, gum, monte_carlo
 
 FEED_CHUNK = 65536

@@ -56,7 +56,7 @@ def _int_col(trace: dict, name: str):
     if col is None or not np.isfinite(col).all():
         return None
     if name == "direction" and not np.isin(col, (-1, 1)).all():
-        raise LogError(f"CSV column direction must hold only +1 and -1")
+        raise LogError("CSV column direction must hold only +1 and -1")
     return col.astype(np.int64)
 
 

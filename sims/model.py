@@ -28,7 +28,6 @@ from __future__ import annotations
 import math
 from typing import Any
 
-import numpy as np
 
 from sims import optics
 from sims.camera import CameraModel

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.signal import periodogram
 
-from analysis.counter import fit_spacing
+from analysis.modefit import fit_spacing
 from analysis.pipeline import analyze_trace, directions_from_positions
 from tests.tracegen import Spec, make_trace
 
