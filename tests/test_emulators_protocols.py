@@ -15,6 +15,10 @@ from sims.emulators import (CombPhysics, LockedPhysics, PhotodiodeMeter, Stepper
 from sims.emulators.gcode_machine import parse_words
 from sims.emulators.scpi_meter import scpi_header_rx
 
+# A reply that is due can still take a while on a loaded machine; readline returns
+# as soon as the line is in, so a generous timeout costs nothing when all is well.
+REPLY_S = 3.0
+
 
 @pytest.mark.parametrize("header, ok", [
     # SCPI-99 (from memory): each node in its short form (the capitals) or its long form,
@@ -45,15 +49,21 @@ def test_stepper_speaks_its_configured_protocol_and_moves_in_time():
     raw = CombPhysics()
     proto = StepperProtocol(eol_in="\n", eol_out="\r\n", move_abs="@1 GOTO {steps}", ack="*",
                             query_position="@1 WHERE", position_reply="@1 AT {steps} STEPS",
-                            speed_steps_per_s=1000.0)
+                            speed_steps_per_s=200.0)
     port, ctl = start_stepper(LockedPhysics(raw), proto)
     try:
-        with serial.Serial(port.path, timeout=0.5) as s:
+        with serial.Serial(port.path, timeout=REPLY_S) as s:
             s.write(b"@1 GOTO 200\n")
             assert s.readline() == b"*\r\n"
             s.write(b"BUSY?\n")
-            assert s.readline() == b"1\r\n"             # 200 steps at 1000 steps/s: still moving
-            time.sleep(0.3)
+            assert s.readline() == b"1\r\n"             # 200 steps at 200 steps/s: still moving
+            t0 = time.monotonic()
+            while time.monotonic() - t0 < 5.0:
+                s.write(b"BUSY?\n")
+                if s.readline() == b"0\r\n":
+                    break
+                time.sleep(0.05)
+            assert 0.5 < time.monotonic() - t0 < 5.0     # about one second of motion
             s.write(b"@1 WHERE\n")
             assert s.readline() == b"@1 AT 200 STEPS\r\n"
             s.write(b"NONSENSE\n")
@@ -65,7 +75,7 @@ def test_stepper_speaks_its_configured_protocol_and_moves_in_time():
 
 def test_faults_and_pulled_cable():
     port, ctl = start_stepper(LockedPhysics(CombPhysics()), StepperProtocol())
-    with serial.Serial(port.path, timeout=0.3) as s:
+    with serial.Serial(port.path, timeout=REPLY_S) as s:
         port.faults.inject("garble", 1)
         s.write(b"POS?\r")
         line = s.readline()
@@ -88,12 +98,14 @@ def test_scpi_meter_error_queue_and_semicolons():
     raw = CombPhysics()
     port = start_instrument(PhotodiodeMeter(LockedPhysics(raw)))
     try:
-        with serial.Serial(port.path, timeout=0.3) as s:
+        with serial.Serial(port.path, timeout=REPLY_S) as s:
             s.write(b"*IDN?;MEAS?\n")
             idn, value = s.readline().decode().strip().split(";")
             assert idn.startswith("Modetick Emulated") and float(value) == pytest.approx(raw.value_at(0))
             s.write(b"BOGUS:QUERY?\n")
+            s.timeout = 0.3
             assert s.readline() == b""                    # no reply to an unknown query
+            s.timeout = REPLY_S
             s.write(b"SYST:ERR?\n")
             assert s.readline() == b'-113,"Undefined header"\n'
             s.write(b"SYSTem:ERRor:NEXT?\n")
@@ -106,7 +118,7 @@ def test_gcode_machine_plans_and_syncs():
     raw = CombPhysics()
     port, m = start_gcode_machine(LockedPhysics(raw), units_per_step=0.01)
     try:
-        with serial.Serial(port.path, timeout=1.0) as s:
+        with serial.Serial(port.path, timeout=REPLY_S) as s:
             s.write(b"G90\nG1 X1.00 F300\n")             # 100 steps at 5 units/s = 0.2 s
             assert s.readline() == b"ok\n" and s.readline() == b"ok\n"   # planned: ok at once
             t0 = time.monotonic()
