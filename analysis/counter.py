@@ -45,6 +45,11 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
+from analysis import crossing_kernels as ck
+from analysis import signal_kernels as kern
+# BLOCK: samples per baseline block; NOISE_STRIDE: the noise level is estimated on
+# every 4th sample (a divisor of BLOCK). Defined with the compiled loops that use them.
+from analysis.signal_kernels import BLOCK, NOISE_STRIDE
 from analysis.modefit import fit_spacing, mechanical_centres
 
 # [counter] rig keys and their defaults (schema format of daq/rig.py).
@@ -59,15 +64,12 @@ SETTINGS: dict[str, Any] = {
     "expected_spacing_steps": 0.0,  # 0 = learn the spacing from the first blips
 }
 
-BLOCK = 8            # samples per baseline block
 GROUP = 8192         # samples per noise update (a multiple of BLOCK)
 INIT_NOISE = 2048    # samples the first noise level is taken from
-NOISE_STRIDE = 4     # the noise level is estimated on every 4th sample (a divisor of BLOCK)
 NOISE_CLIP = 4.0     # excursions below the baseline count at most this many sigma
 EVENT_GROUP = 65536  # samples per update of the running spacing and typical blip
 BATCH = 65536        # samples the work waits for (or max_latency_s), see StreamCounter;
                      # also the most done in one pass: bigger temporaries cost page faults
-VECTOR_MIN = 24      # fewer candidates than this are handled one by one
 EVENT_MIN = 64       # candidates that wait to be counted together (see max_latency_s)
 N_INIT = 12          # candidates in one run before the spacing is first estimated
 INIT_COUNTS = (12, 24, 48, 96, 192)   # candidate counts at which that is tried
@@ -239,7 +241,12 @@ class _Buf:
             self.extend(np.asarray(data, dtype))
 
     def extend(self, v: np.ndarray) -> None:
-        n = v.size
+        at = self.reserve(v.size)
+        self.arr[at:at + v.size] = v
+        self.commit(v.size)
+
+    def reserve(self, n: int) -> int:
+        """Make room for n more values; returns where they go (then commit(n))."""
         if self.hi + n > self.arr.size:
             live = self.hi - self.lo
             cap = self.arr.size
@@ -248,7 +255,9 @@ class _Buf:
             new = np.empty(cap, self.dtype) if cap != self.arr.size or self.lo < live else self.arr
             new[:live] = self.arr[self.lo:self.hi]
             self.arr, self.lo, self.hi = new, 0, live
-        self.arr[self.hi:self.hi + n] = v
+        return self.hi
+
+    def commit(self, n: int) -> None:
         self.hi += n
 
     def drop(self, k: int) -> None:
@@ -309,60 +318,15 @@ class _ModeTable:
             self.sq[row, i] += pos * pos
 
     def add(self, k, d, pos, h, w, reliable) -> None:
-        k = np.asarray(k, np.int64)
+        """add1() for each crossing, in order (compiled)."""
+        k = np.ascontiguousarray(k, np.int64)
         if k.size == 0:
             return
-        kmin, kmax = int(k.min()), int(k.max())
-        self._grow(kmin, kmax)
-        dk = np.diff(k)
-        if k.size > 1 and ((dk > 0).all() or (dk < 0).all()):     # one pass: modes in order
-            self._add_distinct(k, d, pos, h, w, reliable)
-            return
-        i = k - kmin
-        sl = slice(kmin - self.off, kmax - self.off + 1)
-        n = kmax - kmin + 1
-        self.seen[sl] += np.bincount(i, minlength=n)
-        self.hsum[sl] += np.bincount(i, weights=np.asarray(h, float), minlength=n)
-        self.wsum[sl] += np.bincount(i, weights=np.asarray(w, float), minlength=n)
-        rel = np.asarray(reliable, bool)
-        d = np.asarray(d)
-        p = np.asarray(pos, float)
-        self.strong[sl] += np.bincount(i[rel], minlength=n)
-        for row, sel in ((0, rel & (d > 0)), (1, rel & (d < 0))):
-            if sel.any():
-                ii, pp = i[sel], p[sel]
-                self.cnt[row, sl] += np.bincount(ii, minlength=n)
-                self.sum[row, sl] += np.bincount(ii, weights=pp, minlength=n)
-                self.sq[row, sl] += np.bincount(ii, weights=pp * pp, minlength=n)
-
-    def _add_distinct(self, k, d, pos, h, w, reliable) -> None:
-        """add() for modes in strict order (one pass): each mode gets one value.
-
-        bincount's per-mode sum is then 0.0 + v, which is v exactly, and adding
-        0.0 where nothing was selected leaves a sum unchanged (the tables never
-        hold -0.0), so the tables come out bit-identical to add().
-        """
-        h = np.asarray(h, float)
-        w = np.asarray(w, float)
-        p = np.asarray(pos, float)
-        rel = np.asarray(reliable, bool)
-        d = np.broadcast_to(np.asarray(d), k.shape)
-        if k[0] > k[-1]:                  # downward: walk it upward so the modes form a slice
-            k, h, w, p, rel, d = k[::-1], h[::-1], w[::-1], p[::-1], rel[::-1], d[::-1]
-        j0 = int(k[0]) - self.off
-        if int(k[-1]) - int(k[0]) == k.size - 1:
-            j = slice(j0, j0 + k.size)     # consecutive modes: views, no fancy indexing
-        else:
-            j = k - self.off
-        self.seen[j] += 1.0
-        self.hsum[j] += h
-        self.wsum[j] += w
-        self.strong[j] += rel
-        pp = p * p
-        for row, sel in ((0, rel & (d > 0)), (1, rel & (d < 0))):
-            self.cnt[row, j] += sel
-            self.sum[row, j] += np.where(sel, p, 0.0)
-            self.sq[row, j] += np.where(sel, pp, 0.0)
+        self._grow(int(k.min()), int(k.max()))
+        ck.table_add(self.off, self.seen, self.hsum, self.wsum, self.strong, self.cnt, self.sum,
+                     self.sq, k, np.ascontiguousarray(d, np.int64),
+                     np.ascontiguousarray(pos, np.float64), np.ascontiguousarray(h, np.float64),
+                     np.ascontiguousarray(w, np.float64), np.ascontiguousarray(reliable, np.bool_))
 
     def to_state(self) -> dict:
         return {"off": self.off, "cnt": self.cnt.tolist(), "sum": self.sum.tolist(),
@@ -382,19 +346,6 @@ class _ModeTable:
         t.hsum = np.array(st["hsum"], float)
         t.wsum = np.array(st["wsum"], float)
         return t
-
-
-def _block_means(seg: np.ndarray) -> np.ndarray:
-    """Means of consecutive BLOCK-sample blocks (the last may be short), added in a fixed order."""
-    full = seg.size // BLOCK
-    m = seg[:full * BLOCK].reshape(full, BLOCK)
-    s = m[:, 0].copy()
-    for j in range(1, BLOCK):
-        s += m[:, j]
-    s /= BLOCK
-    if full * BLOCK < seg.size:
-        s = np.append(s, seg[full * BLOCK:].mean())
-    return s
 
 
 def _median(v) -> float:
@@ -436,7 +387,6 @@ class StreamCounter:
         self._conf = float(s["confirm_sigma"])
         self._minh = float(s["min_height"])
         self._last_proc = time.monotonic()
-        self._work = np.empty(0)     # scratch for the dropout filter (no page faults per pass)
         # --- sample stage ---
         self._xb = _Buf(np.float64)  # samples from absolute index _t0
         self._pb = _Buf(np.float64)
@@ -510,23 +460,21 @@ class StreamCounter:
                              f"({p.size}, {d.size}, {x.size})")
         if p.size == 0:
             return self._take()
-        if not np.isfinite(x).all():
+        n = x.size
+        at = self._xb.reserve(n)
+        self._pb.reserve(n)
+        self._db.reserve(n)
+        # one compiled pass checks the values and directions and stores the samples
+        ok = kern.store_samples(p, d, x, self._pb.arr, self._db.arr, self._xb.arr, at)
+        if ok < 0:
             raise ValueError("feed: value contains NaN or infinity")
-        if d.dtype.kind == "f":
-            d = np.sign(d)
-        d = d.astype(np.int8, copy=False)
-        if not d.all() or d.max() > 1 or d.min() < -1:
-            d = np.sign(d).astype(np.int8)
-            if not d.all():              # 0 = no move: keep the last direction
-                idx = np.where(d != 0, np.arange(d.size), -1)
-                np.maximum.accumulate(idx, out=idx)
-                last_in = self._last_in
-                d = np.where(idx >= 0, d[np.maximum(idx, 0)], last_in or 1).astype(np.int8)
-        self._xb.extend(x)
-        self._pb.extend(p)
-        self._db.extend(d)
-        self._n += x.size
-        self._last_in = int(d[-1])
+        if ok == 0:                      # directions other than +1 / -1
+            d = self._directions(d)
+            kern.store_samples(p, d, x, self._pb.arr, self._db.arr, self._xb.arr, at)
+        for buf in (self._xb, self._pb, self._db):
+            buf.commit(n)
+        self._n += n
+        self._last_in = int(self._db.arr[self._db.hi - 1])
         now = time.monotonic()
         if now - self._last_proc >= self.max_latency_s:
             self._process(final=False, events=True)
@@ -534,6 +482,15 @@ class StreamCounter:
         elif self._n - self._done >= BATCH + (self._margin + 2) * BLOCK:
             self._process(final=False)
         return self._take()
+
+    def _directions(self, d: np.ndarray) -> np.ndarray:
+        """Directions as +1 / -1: the sign of each; 0 (no move) keeps the last direction."""
+        d = np.sign(d).astype(np.int8)
+        if not d.all():
+            idx = np.where(d != 0, np.arange(d.size), -1)
+            np.maximum.accumulate(idx, out=idx)
+            d = np.where(idx >= 0, d[np.maximum(idx, 0)], self._last_in or 1).astype(np.int8)
+        return d
 
     def finish(self) -> list[Event]:
         """End of stream: flush everything still pending; return the last events."""
@@ -589,13 +546,9 @@ class StreamCounter:
                 xs = np.concatenate((xs, xs[-1:]))
             # a single-sample dropout is raised to the lower of its neighbours, so
             # it cannot pull the baseline down (blip troughs are wider than that)
-            ns = xs.size - 2
-            if self._work.size < ns:
-                self._work = np.empty(max(ns, BATCH + (self._margin + 4) * BLOCK))
-            seg = self._work[:ns]
-            np.minimum(xs[:-2], xs[2:], out=seg)
-            np.maximum(xs[1:-1], seg, out=seg)
-            self._bmb.extend(_block_means(seg))
+            means = np.empty(-(-(xs.size - 2) // BLOCK))
+            kern.despiked_block_means(xs, means)
+            self._bmb.extend(means)
             self._nb = nb_target
         if final:
             fb, F = self._nb, n
@@ -677,11 +630,7 @@ class StreamCounter:
     def _scan(self, a: int, F: int, final: bool):
         """Hysteresis over samples [a, F); returns completed candidate runs (start, end, confirm).
 
-        Per block, the maximum says whether a trigger can be inside and the
-        minimum whether the whole block lies above the re-arm level. Only
-        blocks holding a trigger, grown through blocks wholly above the re-arm
-        level and by one block each side (where such a run must end), are
-        looked at sample by sample: runs without a trigger never count.
+        Also folds the batch's noise sums into the noise level, group by group.
         """
         t0 = self._t0
         n = F - a
@@ -689,18 +638,7 @@ class StreamCounter:
         ba = a // BLOCK
         nbk = -(-n // BLOCK)
         bl = self._bb[ba - self._bb0:ba + nbk - self._bb0]
-        # noise: excursions below the baseline on every NOISE_STRIDE-th sample
-        k = BLOCK // NOISE_STRIDE
-        sub = np.minimum(x[::NOISE_STRIDE] - np.repeat(bl, k)[:-(-n // NOISE_STRIDE)], 0.0)
         bexc = self._bm[ba - self._bm0:ba + nbk - self._bm0] - bl
-        # block maxima and minima (a short last block is padded with its last sample)
-        xp = x if n % BLOCK == 0 else np.concatenate((x, np.full(BLOCK - n % BLOCK, x[-1])))
-        X = xp.reshape(nbk, BLOCK)
-        bmax = X[:, 0].copy()
-        bmin = X[:, 0].copy()
-        for j in range(1, BLOCK):
-            np.maximum(bmax, X[:, j], out=bmax)
-            np.minimum(bmin, X[:, j], out=bmin)
         # the noise level in force per block (it changes only at group ends)
         sig_at = np.empty(nbk)
         g, s = a // GROUP, a
@@ -708,99 +646,26 @@ class StreamCounter:
             e = min(F, (g + 1) * GROUP)
             bs, be = (s - a) // BLOCK, -(-(e - a) // BLOCK)
             sig_at[bs:be] = self._sigma
-            # clipped at NOISE_CLIP sigma (sigma in force: fixed for the group), so spikes
-            # and dropouts do not inflate it; per-block sums in a fixed order
-            sg = np.maximum(sub[(s - a) // NOISE_STRIDE:-(-(e - a) // NOISE_STRIDE)],
-                            -NOISE_CLIP * self._sigma)
-            if sg.size % k:
-                sg = np.concatenate((sg, np.zeros(k - sg.size % k)))
-            bneg = sg[0::k].copy()
-            for j in range(1, k):
-                bneg += sg[j::k]
+            # noise: excursions below the baseline on every NOISE_STRIDE-th sample, clipped
+            # at NOISE_CLIP sigma (sigma in force: fixed for the group), so spikes and
+            # dropouts do not inflate it; per-block sums in a fixed order
+            bneg = np.empty(be - bs)
+            self._gcnt += float(kern.noise_block_sums(x, bl, bs, be, NOISE_CLIP * self._sigma, bneg))
             self._gneg.append(bneg)
-            self._gcnt += float(np.count_nonzero(sg))
             self._gmax = max(self._gmax, float(bexc[bs:be].max()))
             if e == (g + 1) * GROUP or (final and e == F):
                 self._end_group_noise()
             s, g = e, g + 1
-        lo_t = bl + self._lo * sig_at
-        hi_t = bl + np.maximum(self._hi * sig_at, self._minh)
-        trig_b = bmax > hi_t
-        elig = (trig_b | (bmin > lo_t)).astype(np.int8)
-        edges = np.flatnonzero(np.diff(np.concatenate(([0], elig, [0]))))
-        cs_, ce_ = edges[0::2], edges[1::2]
-        ct = np.concatenate(([0], np.cumsum(trig_b)))
-        sel = ct[ce_] > ct[cs_]
-        carry = self._open >= 0
-        if carry and cs_.size:
-            sel[0] |= cs_[0] == 0
-        if not final and cs_.size:
-            sel[-1] |= ce_[-1] == nbk
-        r0 = np.maximum(cs_[sel] - 1, 0)
-        r1 = np.minimum(ce_[sel] + 1, nbk)
-        extra0 = [0] if carry else []
-        extra1 = [nbk - 1] if not final else []
-        if extra0 or extra1:
-            r0 = np.concatenate((extra0, r0, extra1)).astype(np.int64)
-            r1 = np.concatenate(([1] if carry else [], r1, [nbk] if not final else [])).astype(np.int64)
-            order = np.argsort(r0, kind="stable")
-            r0, r1 = r0[order], r1[order]
-        new_open = -1
-        out = None
-        if r0.size:
-            # merge overlapping or touching block ranges
-            reach = np.maximum.accumulate(r1)
-            brk = np.concatenate(([True], r0[1:] > reach[:-1]))
-            m0 = r0[brk]
-            m1 = np.maximum.reduceat(r1, np.flatnonzero(brk))
-            s0 = m0 * BLOCK
-            s1 = np.minimum(m1 * BLOCK, n)
-            ln = s1 - s0
-            tot = int(ln.sum())
-            off = np.zeros(ln.size, np.int64)
-            np.cumsum(ln[:-1], out=off[1:])
-            li = np.repeat(s0 - off, ln) + np.arange(tot)        # sample indices in the batch
-            bi = li // BLOCK
-            xv = x[li]
-            m = xv > lo_t[bi]
-            # a run never joins two ranges: the start of each range reads as below
-            sep = off[1:] if carry and s0[0] == 0 else off
-            m[sep] = False
-            trig = a + li[np.flatnonzero(xv > hi_t[bi])]
-            ch = np.flatnonzero(m[1:] != m[:-1]) + 1
-            up = m[ch]
-            rises, falls = ch[up], ch[~up]
-            if m[0] and not carry:
-                rises = np.concatenate(([0], rises))
-            if (not m[0]) and carry:
-                falls = np.concatenate(([0], falls))
-            starts = a + li[rises]
-            if carry:
-                starts = np.concatenate(([self._open], starts))
-            ends = a + li[falls]
-            if starts.size > ends.size:           # a run still open at F
-                if final:
-                    ends = np.concatenate((ends, [F]))
-                else:
-                    new_open = int(starts[-1])
-                    starts = starts[:-1]
-            if starts.size:
-                has = np.searchsorted(trig, starts) < np.searchsorted(trig, ends)
-                if carry and self._open_trig:
-                    has[0] = True
-                if has.any():
-                    st, en = starts[has], ends[has]
-                    # confirm against the noise in force where the run ended
-                    blk = np.minimum((np.minimum(en, F - 1) - a) // BLOCK, nbk - 1)
-                    out = (st, en, self._conf * sig_at[blk])
-            if new_open >= 0:
-                carried = new_open == self._open
-                t_after = trig.size and trig[-1] >= new_open
-                self._open_trig = bool(t_after) or (carried and self._open_trig)
-        if new_open < 0:
-            self._open_trig = False
-        self._open = new_open
-        return out
+        most = n // 2 + 2                   # runs alternate with gaps at the most
+        st, en, eb = (np.empty(most, np.int64) for _ in range(3))
+        k, self._open, trig = kern.hysteresis(x, a, bl, sig_at, self._lo, self._hi, self._minh,
+                                              self._open, self._open_trig, final, st, en, eb)
+        self._open_trig = bool(trig)
+        self._open = int(self._open)
+        if k == 0:
+            return None
+        # confirm against the noise in force where the run ended
+        return st[:k], en[:k], self._conf * sig_at[eb[:k]]
 
     def _end_group_noise(self) -> None:
         """Close a group: fold its noise sums into the running average."""
@@ -850,111 +715,41 @@ class StreamCounter:
                 np.concatenate((nocut[keep], np.array(cr, bool)))[order])
 
     def _measure(self, st, en, cut_l, cut_r, conf=None) -> dict[str, np.ndarray]:
-        """Centre, area, height, extent and direction of candidate runs (vectorised).
+        """Centre, area, height, extent and direction of candidate runs (signal_kernels.measure_runs).
 
-        The centre is the intensity-weighted mean position of the samples above
-        half the blip's (3-point-median) maximum: the tails, a neighbour's
-        overlap and a dead-band plateau after a turn do not pull it.
+        With ``conf`` (the confirm level of each run), a run longer than 0.6
+        spacing that holds two blips is first cut at the valley between them
+        (signal_kernels.valley_cuts) and the pieces are measured instead.
         """
-        t0 = self._t0
-        ln = en - st
-        tot = int(ln.sum())
-        cs = np.zeros(ln.size, np.int64)
-        np.cumsum(ln[:-1], out=cs[1:])
-        # r over one contiguous range around all runs, one sample of margin each side
-        lo, hi = int(st[0]) - 1, int(en.max()) + 1
-        lo_c, hi_c = max(lo, t0), min(hi, t0 + self._x.size)
-        b_lo = lo_c // BLOCK
-        base = np.repeat(self._bb[b_lo - self._bb0:-(-hi_c // BLOCK) - self._bb0], BLOCK)
-        rr = self._x[lo_c - t0:hi_c - t0] - base[lo_c - b_lo * BLOCK:hi_c - b_lo * BLOCK]
-        # reflect at the ends of the stream (an edge sample is never its own neighbour)
-        if lo < lo_c:
-            rr = np.concatenate((rr[1:2], rr))
-        if hi > hi_c:
-            rr = np.concatenate((rr, rr[-2:-1] if self._final_scan else rr[-1:]))
-        idx = np.repeat(st - cs, ln) + np.arange(tot)
-        rel = idx - lo
-        r0, rm, rp = rr[rel], rr[rel - 1], rr[rel + 1]
-        med = np.maximum(np.minimum(rm, r0), np.minimum(np.maximum(rm, r0), rp))
+        t0, x, bb, final = self._t0, self._x, self._bb, self._final_scan
+        st = np.ascontiguousarray(st, np.int64)
+        en = np.ascontiguousarray(en, np.int64)
         if conf is not None:
-            # only a run longer than 0.6 spacing can hold two blips
             long_ = (np.abs(self._p[en - 1 - t0] - self._p[st - t0]) > 0.6 * self._S
                      if self._S else np.ones(st.size, bool))
             if long_.any():
-                cut = self._valleys(med, ln, cs, st, conf, long_)
-                if cut is not None:
-                    return cut
-        hraw = np.maximum.reduceat(r0, cs)
-        hmed = np.maximum.reduceat(med, cs)
-        half = np.repeat(0.5 * hmed, ln)
-        w = np.maximum(med - half, 0.0)
-        pos = self._p[idx - t0]
-        ref = pos[cs]
-        q = pos - np.repeat(ref, ln)
-        sw = np.add.reduceat(w, cs)
-        swp = np.add.reduceat(w * q, cs)
-        above = med >= half
-        pmin = np.minimum.reduceat(np.where(above, pos, np.inf), cs)
-        pmax = np.maximum.reduceat(np.where(above, pos, -np.inf), cs)
-        step = np.abs(self._p[en - 1 - t0] - ref) / np.maximum(ln - 1, 1)
-        cen = np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
-        # peak: first sample of each run reaching its raw maximum
-        hit = np.flatnonzero(r0 == np.repeat(hraw, ln))
-        first = np.unique(np.searchsorted(cs, hit, side="right") - 1, return_index=True)[1]
-        peak = idx[hit[first]]
-        height = np.where(hraw <= 2.5 * hmed, hraw, hmed)
-        # crossed from half height to half height, or not: a piece that starts at
-        # a cut (a turn, the start of the stream) or ends at one (a turn, the end)
-        # while still above half its maximum was only partly crossed
+                need = conf * (self._hi / self._conf)
+                cuts = np.empty(int((en - st)[long_].sum()) // 2 + 1, np.int64)
+                k = kern.valley_cuts(x, bb, t0, self._bb0, final, st, en, long_, need, cuts)
+                if k:
+                    s2 = np.unique(np.concatenate((st, cuts[:k])))           # piece starts
+                    owner = np.searchsorted(st, s2, side="right") - 1
+                    same = np.append(owner[1:] == owner[:-1], False)
+                    e2 = np.where(same, np.append(s2[1:], 0), en[owner])
+                    out = self._measure(s2, e2, cut_l[owner] & (s2 == st[owner]), cut_r[owner] & ~same)
+                    out["_conf"] = conf[owner]
+                    return out
         cut_l = cut_l | (st == 0)
-        if self._final_scan:
+        if final:
             cut_r = cut_r | (en >= self._n)
-        half_m = 0.5 * hmed
-        partial = (cut_l & (med[cs] >= half_m)) | (cut_r & (med[cs + ln - 1] >= half_m))
-        return {"start": st, "end": en, "peak": peak, "pos": ref + cen, "area": sw,
-                "height": height, "hmed": hmed, "d": self._d[st - t0].astype(np.int64),
-                "partial": partial, "pmin": pmin, "pmax": pmax, "step": step}
-
-    def _valleys(self, med, ln, cs, st, conf, long_):
-        """Split runs holding two blips: a valley below half the lower of two peaks
-        that both reach the trigger level (a trough that never got back down to
-        the re-arm level, e.g. under drift the baseline could not follow).
-        Returns the measurement of the pieces, or None when no run needs it."""
-        k = ln.size
-        seg = np.repeat(np.arange(k), ln)
-        big = 2.0 * (float(np.ptp(med)) + 1.0)
-        up = med + seg * big
-        left = np.maximum.accumulate(up) - seg * big
-        down = med + (k - 1 - seg) * big
-        right = np.maximum.accumulate(down[::-1])[::-1] - (k - 1 - seg) * big
-        need = np.repeat(conf * (self._hi / self._conf), ln)
-        side = np.minimum(left, right)
-        deep = (med < 0.5 * side) & (side >= need) & np.repeat(long_, ln)
-        if not deep.any():
-            return None
-        # one cut per valley, at its lowest sample
-        di = np.flatnonzero(deep)
-        brk = np.concatenate(([True], np.diff(di) > 1))
-        starts = np.flatnonzero(brk)
-        lows = np.minimum.reduceat(med[di], starts)
-        cut_at = []
-        for s0, s1, lo in zip(starts.tolist(), np.append(starts[1:], di.size).tolist(), lows.tolist()):
-            j = di[s0:s1]
-            cut_at.append(int(j[int(np.argmax(med[j] == lo))]))
-        cut_at = np.array(cut_at, np.int64)
-        run_of = seg[cut_at]
-        absolute = st[run_of] + (cut_at - cs[run_of])
-        s2 = np.unique(np.concatenate((st, absolute)))           # piece starts
-        owner = np.searchsorted(st, s2, side="right") - 1
-        same = np.append(owner[1:] == owner[:-1], False)
-        e2 = np.where(same, np.append(s2[1:], 0), st[owner] + ln[owner])
-        first = s2 == st[owner]
-        last = ~same
-        cl = self._cl_tmp[owner] & first
-        cr = self._cr_tmp[owner] & last
-        out = self._measure(s2, e2, cl, cr)
-        out["_conf"] = conf[owner]
-        return out
+        out_f, out_i = np.empty((st.size, 7)), np.empty((st.size, 2), np.int64)
+        kern.measure_runs(x, self._p, bb, t0, self._bb0, final, st, en,
+                          np.ascontiguousarray(cut_l, np.bool_), np.ascontiguousarray(cut_r, np.bool_),
+                          out_f, out_i)
+        return {"start": st, "end": en, "peak": out_i[:, 0].copy(), "pos": out_f[:, 0].copy(),
+                "area": out_f[:, 1].copy(), "height": out_f[:, 2].copy(), "hmed": out_f[:, 3].copy(),
+                "d": self._d[st - t0].astype(np.int64), "partial": out_i[:, 1].astype(bool),
+                "pmin": out_f[:, 4].copy(), "pmax": out_f[:, 5].copy(), "step": out_f[:, 6].copy()}
 
     # ------------------------------------------------------------- event stage
     def _events(self, spans, revs: list[tuple], F: int) -> None:
@@ -962,7 +757,6 @@ class StreamCounter:
         cols = None
         if spans is not None:
             st, en, conf, cl, cr = self._split(*spans)
-            self._cl_tmp, self._cr_tmp = cl, cr
             c = self._measure(st, en, cl, cr, conf)
             conf = c.pop("_conf", conf)
             # single-sample spikes fail here: their 3-point median stays in the noise
@@ -1115,12 +909,41 @@ class StreamCounter:
         i = 0
         while i < n:
             P = self._P
-            if P is None or P["fresh"] or not self._S or n - i < VECTOR_MIN:
+            if P is None or P["fresh"] or not self._S or int(c["d"][i]) != P["d"]:
                 self._one(c, i)
                 i += 1
             else:
-                self._merge_block({f: v[i:] for f, v in c.items()})
-                return
+                i = self._run_block(c, i)
+
+    def _run_block(self, c: dict, i0: int) -> int:
+        """_one over candidates i0, i0+1, ... in compiled code, while the run goes on.
+
+        Returns the first candidate it left for _one (a change of direction).
+        """
+        P = self._P
+        Pf = np.array([np.nan if P[f] is None else P[f] for f in ck.PF_FIELDS], np.float64)
+        Pi = np.array([0 if P[f] is None else int(P[f]) for f in ck.PI_FIELDS], np.int64)
+        m = c["pos"].size - i0
+        out_i, out_f = np.empty((m, 6), np.int64), np.empty((m, 4))
+        gap_v, gap_n = np.empty(m), np.empty(m, np.int64)
+        i, n_out, n_gap = ck.merge_and_number(
+            c["pos"], c["area"], c["height"], c["peak"], c["start"], c["end"], c["partial"],
+            c["pmin"], c["pmax"], c["step"], c["d"], i0, Pf, Pi, float(self._S), self._f,
+            float(self._htyp or 0.0), float(self._wtyp or 0.0), MAX_SPAN, MAIN_HEIGHT,
+            OFF_LATTICE, WEAK_WIDTH, GLIMPSE_WIDTH, out_i, out_f, gap_v, gap_n)
+        self._push_gaps(gap_v[:n_gap], gap_n[:n_gap])
+        if n_out:
+            oi, of = out_i[:n_out], out_f[:n_out]
+            self._emit(oi[:, ck.OI_K], oi[:, ck.OI_PEAK], oi[:, ck.OI_START], oi[:, ck.OI_END],
+                       of[:, ck.OF_CEN], int(P["d"]), of[:, ck.OF_H], of[:, ck.OF_WIDTH],
+                       of[:, ck.OF_AREA], oi[:, ck.OI_PARTS], oi[:, ck.OI_WEAK].astype(bool))
+        flags = ("hasmain", "fresh", "deadband", "repeat", "offlat")
+        new = {f: float(v) for f, v in zip(ck.PF_FIELDS, Pf.tolist())}
+        new.update((f, bool(v) if f in flags else int(v)) for f, v in zip(ck.PI_FIELDS, Pi.tolist()))
+        if math.isnan(new["anc_cent"]):
+            new["anc_cent"] = new["anc_k"] = None
+        self._P = {f: new[f] for f in P if f != "cent"}
+        return int(i)
 
     def _new_pending(self, c: dict, i: int, k: int, fresh: bool, anc_k, anc_cent, n: int) -> dict:
         h = float(c["height"][i])
@@ -1137,7 +960,7 @@ class StreamCounter:
     def _one(self, c: dict, i: int) -> None:
         """One candidate, in Python: right after a reversal, at the start, and in small batches.
 
-        Does exactly what _merge_block does for many candidates at once.
+        Does exactly what crossing_kernels.merge_and_number does for many candidates at once.
         """
         P, S, d = self._P, self._S, int(c["d"][i])
         pos = float(c["pos"][i])
@@ -1179,157 +1002,6 @@ class StreamCounter:
         n = max(0, int(np.rint(xs))) if S else 1
         self._P = self._new_pending(c, i, anc_k + d * n, False, anc_k, anc_cent, n)
         self._P["offlat"] = bool(S) and abs(xs - n) > OFF_LATTICE
-
-    def _merge_block(self, c: dict) -> None:
-        """Vectorised: merge candidates into crossings and number them (one run, one direction)."""
-        P, S, f = self._P, self._S, self._f
-        d = P["d"]
-        pos, area, h = c["pos"], c["area"], c["height"]
-        if (c["d"] != d).any():       # a direction change without a reversal event: go slowly
-            for i in range(pos.size):
-                self._one(c, i)
-            return
-        main = h >= MAIN_HEIGHT * self._htyp if self._htyp else np.ones(h.size, bool)
-        last = np.concatenate(([P["last"]], pos[:-1]))
-        new = d * (pos - last) >= f * S
-        cid = np.cumsum(new)
-        # no crossing spans more than MAX_SPAN spacings from its first candidate
-        firsts = np.concatenate(([P["ref"]], pos[new]))
-        over = d * (pos - firsts[cid]) >= MAX_SPAN * S
-        if over.any():
-            new = new.copy()
-            for cc in np.unique(cid[over]).tolist():
-                first = float(firsts[cc])
-                for i in np.flatnonzero(cid == cc).tolist():
-                    if d * (pos[i] - first) >= MAX_SPAN * S:
-                        new[i] = True
-                        first = float(pos[i])
-            cid = np.cumsum(new)
-            firsts = np.concatenate(([P["ref"]], pos[new]))
-        m = int(cid[-1])
-        if m == pos.size:
-            # the common case: every candidate is a crossing of its own
-            one = np.ones(m)
-            sw = np.concatenate(([P["sw"]], area))
-            swp = np.concatenate(([P["swp"]], np.zeros(m)))
-            parts = np.concatenate(([P["parts"]], one)).astype(np.int64)
-            npart = np.concatenate(([P["npartial"]], c["partial"].astype(float)))
-            ssum = np.concatenate(([P["stepsum"]], c["step"]))
-            cmin = np.concatenate(([P["pmin"]], c["pmin"]))
-            cmax = np.concatenate(([P["pmax"]], c["pmax"]))
-            hmax = np.concatenate(([P["h"]], h))
-            pk = np.concatenate(([P["peak"]], c["peak"]))
-            cend = np.concatenate(([P["end"]], c["end"]))
-            nmain = np.concatenate(([float(P["hasmain"])], main.astype(float)))
-            cen = firsts + np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
-            width = np.maximum(cmax - cmin, 0.0) + ssum / parts
-        else:
-            # sums per crossing, each referred to its own first candidate and added in
-            # stream order (P's partial sums first), so the result is bit-identical
-            # to merging one candidate at a time however the stream was chunked
-            q = pos - firsts[cid]
-            ids = np.concatenate(([0], cid))
-
-            def seqsum(p0, w):
-                return np.bincount(ids, weights=np.concatenate(([p0], w)), minlength=m + 1)
-
-            sw = seqsum(P["sw"], area)
-            swp = seqsum(P["swp"], area * q)
-            parts = np.bincount(cid, minlength=m + 1)
-            parts[0] += P["parts"]
-            npart = np.bincount(cid, weights=c["partial"].astype(float), minlength=m + 1)
-            npart[0] += P["npartial"]
-            ssum = seqsum(P["stepsum"], c["step"])
-            # clusters are contiguous runs of candidates: reduce over their starts
-            present = np.flatnonzero(np.concatenate(([True], cid[1:] != cid[:-1])))
-            pid = cid[present]
-
-            def cred(ufunc, v, fill):
-                out = np.full(m + 1, fill)
-                out[pid] = ufunc.reduceat(v, present)
-                return out
-
-            cmin = cred(np.minimum, c["pmin"], np.inf)
-            cmax = cred(np.maximum, c["pmax"], -np.inf)
-            cmin[0] = min(cmin[0], P["pmin"])
-            cmax[0] = max(cmax[0], P["pmax"])
-            cen = firsts + np.where(sw > 0, swp / np.where(sw > 0, sw, 1.0), 0.0)
-            width = np.maximum(cmax - cmin, 0.0) + ssum / parts
-            hmax = cred(np.maximum, h, -np.inf)
-            pk = np.full(m + 1, -1, np.int64)
-            is_top = h == hmax[cid]
-            top_c, top_i = np.unique(cid[is_top], return_index=True)
-            pk[top_c] = c["peak"][np.flatnonzero(is_top)[top_i]]
-            if P["h"] >= hmax[0]:
-                hmax[0], pk[0] = P["h"], P["peak"]
-            cend = cred(np.maximum, c["end"], 0)
-            cend[0] = max(cend[0], P["end"])
-            nmain = np.bincount(cid, weights=main.astype(float), minlength=m + 1)
-            nmain[0] += P["hasmain"]
-        if m == 0:
-            P.update(sw=float(sw[0]), swp=float(swp[0]), last=float(pos[-1]), h=float(hmax[0]),
-                     hasmain=bool(nmain[0] > 0), peak=int(pk[0]), end=int(cend[0]),
-                     parts=int(parts[0]), npartial=int(npart[0]), pmin=float(cmin[0]),
-                     pmax=float(cmax[0]), stepsum=float(ssum[0]))
-            return
-        newi = np.flatnonzero(new)
-        cstart = np.concatenate(([P["start"]], c["start"][newi]))
-        weak0 = self._weak(width[:m], npart[:m] >= parts[:m])
-        weak0[0] |= P["deadband"] or P["repeat"] or (P["offlat"] and self._glimpse_like(
-            width[0], not P["hasmain"]))
-        minor = nmain[:m] == 0
-        if self._wtyp:
-            minor = minor | (width[:m] < GLIMPSE_WIDTH * self._wtyp)
-        base_k, base_c = P["anc_k"], P["anc_cent"]
-        if base_c is None:
-            base_k, base_c = P["k"], float(cen[0])
-        # a crossing less than half a spacing past its anchor repeats the anchor's mode
-        # (and is weak); anchors depend on weakness, so solve it as a fixed point, which
-        # when reached is exactly what one-at-a-time processing gives
-        weak = weak0
-        for _ in range(6):
-            anc = np.maximum.accumulate(np.where(~weak, np.arange(m), -1))
-            anc_cent = np.where(anc >= 0, cen[np.maximum(anc, 0)], base_c)
-            xs = d * (pos[newi] - anc_cent) / S
-            nstep = np.maximum(0, np.rint(xs)).astype(np.int64)
-            offl = np.abs(xs - nstep) > OFF_LATTICE
-            w2 = weak0.copy()
-            w2[1:] |= (nstep[:m - 1] == 0) | (minor[1:] & offl[:m - 1])
-            if np.array_equal(w2, weak):
-                break
-            weak = w2
-        else:
-            for i in range(pos.size):         # no fixed point: do it one at a time
-                self._one(c, i)
-            return
-        nw = ~weak
-        # k along the chain of non-weak clusters, then every cluster from its anchor
-        kmap = np.zeros(m, np.int64)
-        kmap[0] = P["k"]
-        chain = np.flatnonzero(nw[1:]) + 1
-        if chain.size:
-            k0 = P["k"] if nw[0] else base_k
-            kmap[chain] = k0 + d * np.cumsum(nstep[chain - 1])
-        anc_k = np.where(anc >= 0, kmap[np.maximum(anc, 0)], base_k)
-        ks = np.concatenate(([P["k"]], anc_k + d * nstep))
-        # spacings between non-weak crossings, for the running spacing
-        gcen = np.concatenate(([np.nan if P["anc_cent"] is None else P["anc_cent"]], anc_cent[:m - 1]))
-        gn = np.concatenate(([P["n"]], nstep[:m - 1]))
-        gaps = d * (cen[:m] - gcen) / np.maximum(gn, 1)
-        if P["fresh"]:
-            gaps[0] = np.nan
-        good = nw & np.isfinite(gaps)
-        self._push_gaps(gaps[good], gn[good])
-        self._emit(ks[:m], pk[:m], cstart[:m], cend[:m], cen[:m], d, hmax[:m], width[:m],
-                   sw[:m], parts[:m], weak)
-        self._P = {"k": int(ks[m]), "d": d, "ref": float(firsts[m]), "sw": float(sw[m]),
-                   "swp": float(swp[m]), "last": float(pos[-1]), "h": float(hmax[m]),
-                   "hasmain": bool(nmain[m] > 0), "peak": int(pk[m]), "start": int(cstart[m]),
-                   "end": int(cend[m]), "parts": int(parts[m]), "npartial": int(npart[m]),
-                   "pmin": float(cmin[m]), "pmax": float(cmax[m]), "stepsum": float(ssum[m]),
-                   "fresh": False, "anc_k": int(anc_k[m - 1]), "anc_cent": float(anc_cent[m - 1]),
-                   "n": int(nstep[m - 1]), "deadband": False, "repeat": bool(nstep[m - 1] == 0),
-                   "offlat": bool(offl[m - 1])}
 
     def _push_gaps(self, gaps, ns) -> None:
         if len(gaps):
@@ -1373,6 +1045,9 @@ class StreamCounter:
         self._est_cache = None
 
     def _emit(self, ks, peaks, starts, ends, cens, d, hs, ws, areas, parts, weak) -> None:
+        """Crossings of one run out, in order (what _emit1 does for each)."""
+        ks, peaks, starts, ends, cens, hs, ws, areas, parts = (
+            np.ascontiguousarray(v) for v in (ks, peaks, starts, ends, cens, hs, ws, areas, parts))
         n = len(ks)
         kl = ks.tolist()
         cl = cens.tolist()
@@ -1392,8 +1067,8 @@ class StreamCounter:
             self._L = {"k": kl[i], "cent": cl[i], "side": int(d), "h": hl[i]}
             self._wrec.extend(ws[si[-GAP_MEMORY:]].tolist())
             self._hrec.extend(hs[si[-GAP_MEMORY:]].tolist())
-        elif self._L is None:
-            self._L = {"k": kl[-1], "cent": cl[-1], "side": int(d), "h": hl[-1]}
+        elif self._L is None:          # as _emit1 one at a time: the first weak one
+            self._L = {"k": kl[0], "cent": cl[0], "side": int(d), "h": hl[0]}
         self._est_cache = None
 
     def _on_reversal(self, rev: tuple) -> None:
@@ -1448,16 +1123,8 @@ class StreamCounter:
             self._prev_arrays = self._run_arrays(prev)
         kp, cp, dp = self._prev_arrays
         self._cur_arrays = (kc, cc, dc)
-        if kc.size == 0 or kp.size == 0:
-            return np.zeros(0)
-        # the last crossing of each mode in the previous run (as a dict would keep it)
-        order = np.argsort(kp, kind="stable")
-        ks, first = np.unique(kp[order][::-1], return_index=True)
-        last = order[::-1][first]
-        j = np.searchsorted(ks, kc)
-        j = np.minimum(j, ks.size - 1)
-        hit = (ks[j] == kc) & (dp[last[j]] == -dc)
-        return dc[hit] * (cc[hit] - cp[last[j[hit]]])
+        out = np.empty(kc.size)
+        return out[:ck.backlash_pairs(kc, cc, dc, kp, cp, dp, out)]
 
     def _fit_backlash(self) -> float | None:
         """Backlash at the first reversal, from the signal alone.

@@ -1,0 +1,261 @@
+"""Per-sample loops of the counter's signal stage, compiled with numba.
+
+Each of these replaces several whole-array numpy passes (and their
+temporaries) by one pass over the samples; they compute exactly what the
+numpy expressions in their docstrings compute, operation for operation, so
+the results are bit-identical and never depend on how the stream was cut.
+numba compiles them on first use and caches the machine code beside this
+file (``__pycache__``), so later processes load them in a fraction of a
+second. Only the loops live here; every decision stays in counter.py.
+"""
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+BLOCK = 8            # samples per baseline block (counter.BLOCK)
+NOISE_STRIDE = 4     # every 4th sample feeds the noise level (counter.NOISE_STRIDE)
+
+
+@njit(cache=True, nogil=True)
+def store_samples(p, d, x, P, D, X, at):
+    """Copy one chunk into the sample buffers at ``at``, checking it on the way.
+
+    Returns -1 if a value is not finite (the caller then rejects the chunk),
+    0 if a direction is not +1 or -1 (the caller fixes them and stores
+    again), 1 when all is stored.
+    """
+    ok = 1
+    for i in range(x.size):
+        v = x[i]
+        if not np.isfinite(v):
+            return -1
+        di = d[i]
+        if di != 1 and di != -1:
+            ok = 0
+        X[at + i] = v
+        P[at + i] = p[i]
+        D[at + i] = di
+    return ok
+
+
+@njit(cache=True, nogil=True)
+def despiked_block_means(xs, out):
+    """Block means of the samples with single-sample dropouts raised.
+
+    ``xs`` holds the samples with one neighbour each side; sample i is
+    ``max(xs[i+1], min(xs[i], xs[i+2]))`` and each block of BLOCK samples is
+    added in order, then divided by BLOCK (a short last block by its length).
+    Writes ``out`` (length ceil((len(xs)-2)/BLOCK)).
+    """
+    ns = xs.size - 2
+    nb = out.size
+    for b in range(nb):
+        i0 = b * BLOCK
+        i1 = min(i0 + BLOCK, ns)
+        s = 0.0
+        for i in range(i0, i1):
+            lo = min(xs[i], xs[i + 2])
+            v = max(xs[i + 1], lo)
+            s = v if i == i0 else s + v
+        out[b] = s / (i1 - i0)
+
+
+@njit(cache=True, nogil=True)
+def noise_block_sums(x, base, b0, b1, clip, out):
+    """Clipped excursions below the baseline, summed per block, for blocks [b0, b1).
+
+    For every NOISE_STRIDE-th sample i of block b (of those in ``x``):
+    ``max(min(x[i] - base[b], 0), -clip)``, added in sample order into
+    ``out[b - b0]``. Returns how many of those terms were not zero.
+    """
+    n = x.size
+    nz = 0
+    for b in range(b0, b1):
+        s = 0.0
+        first = True
+        for j in range(0, BLOCK, NOISE_STRIDE):
+            i = b * BLOCK + j
+            v = 0.0
+            if i < n:
+                v = max(min(x[i] - base[b], 0.0), -clip)
+                if v != 0.0:
+                    nz += 1
+            s = v if first else s + v
+            first = False
+        out[b - b0] = s
+    return nz
+
+
+@njit(cache=True, nogil=True)
+def hysteresis(x, a, base, sigma, lo_sigma, hi_sigma, min_height, open_start, open_trig, final,
+               starts, ends, end_blocks):
+    """Runs of samples above the re-arm level that reach the trigger level.
+
+    Sample i of the batch (stream index a + i, block i // BLOCK) is above the
+    re-arm level when ``x[i] > base + lo_sigma * sigma`` and triggers when
+    ``x[i] > base + max(hi_sigma * sigma, min_height)`` (base and sigma per
+    block). ``open_start`` (-1 for none) is a run still open from the
+    previous batch, ``open_trig`` whether it has triggered. Writes the
+    completed triggered runs as stream indices [start, end) and the block
+    (in the batch) of the sample that ended each run (of the last sample when
+    the batch's end did); a run still open at the end
+    is carried unless ``final``. Returns (runs written, open start, open trig).
+    """
+    n = x.size
+    k = 0
+    run = open_start
+    trig = open_trig if run >= 0 else False
+    b_cur = -1
+    lo_t = 0.0
+    hi_t = 0.0
+    for i in range(n):
+        b = i // BLOCK
+        if b != b_cur:
+            b_cur = b
+            lo_t = base[b] + lo_sigma * sigma[b]
+            hi_t = base[b] + max(hi_sigma * sigma[b], min_height)
+        v = x[i]
+        if v > lo_t:
+            if run < 0:
+                run = a + i
+                trig = False
+            if v > hi_t:
+                trig = True
+        elif run >= 0:
+            if trig:
+                starts[k] = run
+                ends[k] = a + i
+                end_blocks[k] = i // BLOCK
+                k += 1
+            run = -1
+            trig = False
+    if run >= 0 and final:
+        if trig:
+            starts[k] = run
+            ends[k] = a + n
+            end_blocks[k] = (n - 1) // BLOCK
+            k += 1
+        run = -1
+        trig = False
+    return k, run, trig
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _excess(x, base, t0, b0, final, i):
+    """Sample i (stream index) above the baseline; one past either end of the
+    stream reflects about the end sample (or repeats the newest one while more may come)."""
+    last = t0 + x.size - 1
+    if i < t0:
+        i = t0 + 1
+    elif i > last:
+        i = last - 1 if final else last
+    return x[i - t0] - base[i // BLOCK - b0]
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _median3(x, base, t0, b0, final, i):
+    rm = _excess(x, base, t0, b0, final, i - 1)
+    r0 = _excess(x, base, t0, b0, final, i)
+    rp = _excess(x, base, t0, b0, final, i + 1)
+    return max(min(rm, r0), min(max(rm, r0), rp))
+
+
+@njit(cache=True, nogil=True)
+def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
+    """Centre, area, height and extent of each candidate run [st, en) (stream indices).
+
+    With r the excess over the baseline and med its 3-point median: the
+    centre is the med-above-half-maximum weighted mean position (so tails, a
+    neighbour's overlap and a dead-band plateau do not pull it); pmin / pmax
+    the positions where med is at least half its maximum; the peak the first
+    sample reaching the raw maximum; the height the raw maximum unless it is
+    more than 2.5 times the median's (a spike riding on the blip). A run cut
+    on the left (right) while still above half height was only partly
+    crossed. ``x``, ``p`` start at stream index t0, ``base`` (per block) at
+    block b0. Columns: out_f = pos, area, height, hmed, pmin, pmax, step;
+    out_i = peak, partial.
+    """
+    for j in range(st.size):
+        s, e = st[j], en[j]
+        hraw = -np.inf
+        hmed = -np.inf
+        peak = s
+        for i in range(s, e):
+            r0 = _excess(x, base, t0, b0, final, i)
+            if r0 > hraw:
+                hraw = r0
+                peak = i
+            m = _median3(x, base, t0, b0, final, i)
+            if m > hmed:
+                hmed = m
+        half = 0.5 * hmed
+        ref = p[s - t0]
+        sw = 0.0
+        swp = 0.0
+        pmin = np.inf
+        pmax = -np.inf
+        for i in range(s, e):
+            m = _median3(x, base, t0, b0, final, i)
+            w = max(m - half, 0.0)
+            q = p[i - t0]
+            sw += w
+            swp += w * (q - ref)
+            if m >= half:
+                pmin = min(pmin, q)
+                pmax = max(pmax, q)
+        cen = swp / sw if sw > 0 else 0.0
+        partial = ((cut_l[j] and _median3(x, base, t0, b0, final, s) >= half)
+                   or (cut_r[j] and _median3(x, base, t0, b0, final, e - 1) >= half))
+        out_f[j, 0] = ref + cen
+        out_f[j, 1] = sw
+        out_f[j, 2] = hraw if hraw <= 2.5 * hmed else hmed
+        out_f[j, 3] = hmed
+        out_f[j, 4] = pmin
+        out_f[j, 5] = pmax
+        out_f[j, 6] = abs(p[e - 1 - t0] - ref) / max(e - s - 1, 1)
+        out_i[j, 0] = peak
+        out_i[j, 1] = 1 if partial else 0
+
+
+@njit(cache=True, nogil=True)
+def valley_cuts(x, base, t0, b0, final, st, en, long_, need, cuts):
+    """Where runs holding two blips are to be cut: each valley's lowest sample.
+
+    A valley (in a run flagged ``long_``) is a stretch where the 3-point
+    median lies below half the lower of the highest values on its left and
+    on its right within the run, and that lower value reaches ``need`` (the
+    trigger level): a trough the signal never got back down to the re-arm
+    level in, e.g. under drift the baseline could not follow. Writes the
+    stream indices of the cuts, in order; returns how many.
+    """
+    k = 0
+    for j in range(st.size):
+        if not long_[j]:
+            continue
+        s, e = st[j], en[j]
+        ln = e - s
+        med = np.empty(ln)
+        for i in range(ln):
+            med[i] = _median3(x, base, t0, b0, final, s + i)
+        right = np.empty(ln)
+        top = -np.inf
+        for i in range(ln - 1, -1, -1):
+            top = max(top, med[i])
+            right[i] = top
+        left = -np.inf
+        low_i = -1
+        for i in range(ln):
+            left = max(left, med[i])
+            side = min(left, right[i])
+            if med[i] < 0.5 * side and side >= need[j]:
+                if low_i < 0 or med[i] < med[low_i]:
+                    low_i = i
+            elif low_i >= 0:
+                cuts[k] = s + low_i
+                k += 1
+                low_i = -1
+        if low_i >= 0:
+            cuts[k] = s + low_i
+            k += 1
+    return k
