@@ -1,6 +1,7 @@
 """The streaming mode counter: samples in, counted chip modes out.
 
-Signal stage (numpy, per pass of up to 16384 samples):
+Signal stage (per batch of up to 65536 samples; its per-sample loops are
+compiled, see signal_kernels.py):
   * baseline: a grey opening (sliding minimum, then maximum) of 8-sample block
     means over ``baseline_window`` samples, single-sample dropouts filled in
     first; it runs under blips as wide as the spacing and follows drift;
@@ -9,13 +10,13 @@ Signal stage (numpy, per pass of up to 16384 samples):
     samples and updated every 8192 samples; blips only push the signal up;
   * hysteresis: a candidate is a run of samples above ``lo_sigma`` that reaches
     ``hi_sigma``; its 3-point median must reach ``confirm_sigma`` too, so a
-    single-sample spike never counts. Block maxima and minima pick the
-    stretches worth looking at sample by sample; a run holding two blips
-    (a valley below half of both peaks) is split;
+    single-sample spike never counts; a run holding two blips (a valley
+    below half of both peaks) is split;
   * each candidate: centre = intensity-weighted position of the samples above
     half its maximum (sub-step), height, width; runs are cut at reversals.
 
-Event stage (an up/down counter; numpy per run, Python per reversal):
+Event stage (an up/down counter; the loop over candidates within a run is
+compiled, see crossing_kernels.py; Python per reversal):
   * same-direction candidates closer than ``merge_fraction`` of the spacing
     (and within 0.65 spacing of the first) are one crossing: split blips, a
     stick-slip kick seeing a blip again;
@@ -43,7 +44,6 @@ from dataclasses import asdict, dataclass
 from typing import Any
 
 import numpy as np
-from scipy import ndimage
 
 from analysis import crossing_kernels as ck
 from analysis import signal_kernels as kern
@@ -403,11 +403,9 @@ class StreamCounter:
         self._bb0 = 0
         self._sigma: float | None = None
         self._floor = 0.0
-        self._ema: list[float] | None = None    # [sum |neg|, count] running averages
-        self._gcnt = 0.0                         # current group: negative samples
-        self._gneg: list[np.ndarray] = []        # ... and per-block sums of their excursions
-        self._rmax = 0.0
-        self._gmax = 0.0
+        # running averages of the excursions below the baseline and their count, the
+        # current group's sums, the largest block excess (fields kern.NZ_*)
+        self._noise = np.zeros(8)
         self._open = -1              # start of the run above lo still open at _done
         self._open_trig = False
         self._revs: list[int] = []   # recent reversal indices (to cut candidates at turns)
@@ -608,8 +606,8 @@ class StreamCounter:
         arr = self._bm[lo - self._bm0:hi - self._bm0]
         if arr.size == 0:
             return np.zeros(0)
-        o = ndimage.maximum_filter1d(ndimage.minimum_filter1d(arr, self._wb, mode="nearest"),
-                                     self._wb, mode="nearest")
+        o = np.empty(arr.size)
+        kern.grey_opening(np.ascontiguousarray(arr), self._wb, o)
         return o[b0 - lo:b1 - lo]
 
     def _reversals(self, a: int, b: int) -> list[tuple]:
@@ -630,7 +628,8 @@ class StreamCounter:
     def _scan(self, a: int, F: int, final: bool):
         """Hysteresis over samples [a, F); returns completed candidate runs (start, end, confirm).
 
-        Also folds the batch's noise sums into the noise level, group by group.
+        Also folds the batch's noise into the noise level, group by group
+        (signal_kernels.scan_batch).
         """
         t0 = self._t0
         n = F - a
@@ -638,50 +637,22 @@ class StreamCounter:
         ba = a // BLOCK
         nbk = -(-n // BLOCK)
         bl = self._bb[ba - self._bb0:ba + nbk - self._bb0]
-        bexc = self._bm[ba - self._bm0:ba + nbk - self._bm0] - bl
-        # the noise level in force per block (it changes only at group ends)
-        sig_at = np.empty(nbk)
-        g, s = a // GROUP, a
-        while s < F:
-            e = min(F, (g + 1) * GROUP)
-            bs, be = (s - a) // BLOCK, -(-(e - a) // BLOCK)
-            sig_at[bs:be] = self._sigma
-            # noise: excursions below the baseline on every NOISE_STRIDE-th sample, clipped
-            # at NOISE_CLIP sigma (sigma in force: fixed for the group), so spikes and
-            # dropouts do not inflate it; per-block sums in a fixed order
-            bneg = np.empty(be - bs)
-            self._gcnt += float(kern.noise_block_sums(x, bl, bs, be, NOISE_CLIP * self._sigma, bneg))
-            self._gneg.append(bneg)
-            self._gmax = max(self._gmax, float(bexc[bs:be].max()))
-            if e == (g + 1) * GROUP or (final and e == F):
-                self._end_group_noise()
-            s, g = e, g + 1
+        means = self._bm[ba - self._bm0:ba + nbk - self._bm0]
+        sig_at = np.empty(nbk)              # the noise level in force per block
         most = n // 2 + 2                   # runs alternate with gaps at the most
         st, en, eb = (np.empty(most, np.int64) for _ in range(3))
-        k, self._open, trig = kern.hysteresis(x, a, bl, sig_at, self._lo, self._hi, self._minh,
-                                              self._open, self._open_trig, final, st, en, eb)
+        self._noise[kern.NZ_SIGMA] = self._sigma
+        k, self._open, trig = kern.scan_batch(
+            x, a, means, bl, self._lo, self._hi, self._minh, NOISE_CLIP, GROUP // BLOCK,
+            self._alpha, KAPPA, self._floor, final, self._noise, self._open, self._open_trig,
+            st, en, eb, sig_at)
+        self._sigma = float(self._noise[kern.NZ_SIGMA])
         self._open_trig = bool(trig)
         self._open = int(self._open)
         if k == 0:
             return None
         # confirm against the noise in force where the run ended
         return st[:k], en[:k], self._conf * sig_at[eb[:k]]
-
-    def _end_group_noise(self) -> None:
-        """Close a group: fold its noise sums into the running average."""
-        # the group's block sums are the same array however they arrived: same total
-        acc = (-float(np.concatenate(self._gneg).sum()) if self._gneg else 0.0, self._gcnt)
-        self._gneg = []
-        self._gcnt = 0.0
-        if self._ema is None:
-            self._ema = [acc[0], acc[1]]
-        else:
-            a = self._alpha
-            self._ema = [(1 - a) * self._ema[0] + a * acc[0], (1 - a) * self._ema[1] + a * acc[1]]
-        self._rmax = max(self._rmax, self._gmax)
-        self._gmax = 0.0
-        sig = KAPPA * self._ema[0] / self._ema[1] if self._ema[1] > 0 else (self._sigma or 0.0)
-        self._sigma = max(sig, self._floor, 1e-3 * self._rmax)
 
     def _split(self, st, en, conf):
         """Cut candidate runs at every reversal inside them: each piece lies in one run.
@@ -1325,7 +1296,7 @@ class StreamCounter:
     # ---------------------------------------------------------------- state
     _STATE_ARRAYS = ("_x", "_p", "_d", "_bm", "_bb")
     _STATE_PLAIN = ("_t0", "_n", "_done", "_last_dir", "_last_in", "_bm0", "_nb", "_bb0",
-                    "_sigma", "_floor", "_ema", "_gcnt", "_gneg", "_rmax", "_gmax", "_open",
+                    "_sigma", "_floor", "_noise", "_open",
                     "_open_trig", "_revs", "_finished", "_final_scan", "_ev_done", "_pend", "_npend",
                     "_pend_revs", "_S", "_phase",
                     "_held", "_lastrev", "_init_checked",
@@ -1354,6 +1325,12 @@ class StreamCounter:
         """A counter that continues from ``get_state()`` exactly as the original would."""
         if state.get("version") != 1:
             raise ValueError(f"counter state version {state.get('version')!r} is not supported")
+        if "_noise" not in state:           # saved before the noise state was one array
+            ema = state["_ema"] or [0.0, 0.0]
+            gsum = float(sum(sum(v) for v in state["_gneg"]))
+            state = dict(state, _noise=[state["_sigma"] or 0.0, ema[0], ema[1],
+                                        float(state["_ema"] is not None), gsum, state["_gcnt"],
+                                        state["_gmax"], state["_rmax"]])
         c = cls(state["settings"])
         c._xb = _Buf(np.float64, state["_x"])
         c._pb = _Buf(np.float64, state["_p"])
@@ -1369,7 +1346,7 @@ class StreamCounter:
                    for kind, obj in c._held]
         if c._lastrev is not None:
             c._lastrev = tuple(c._lastrev)
-        c._gneg = [np.array(v, np.float64) for v in c._gneg]
+        c._noise = np.array(c._noise, np.float64)
         c._pend = [(np.array(s, np.int64), np.array(e, np.int64), np.array(f, np.float64))
                    for s, e, f in c._pend]
         c._pend_revs = [tuple(r) for r in c._pend_revs]

@@ -61,80 +61,107 @@ def despiked_block_means(xs, out):
         out[b] = s / (i1 - i0)
 
 
-@njit(cache=True, nogil=True)
-def noise_block_sums(x, base, b0, b1, clip, out):
-    """Clipped excursions below the baseline, summed per block, for blocks [b0, b1).
-
-    For every NOISE_STRIDE-th sample i of block b (of those in ``x``):
-    ``max(min(x[i] - base[b], 0), -clip)``, added in sample order into
-    ``out[b - b0]``. Returns how many of those terms were not zero.
-    """
-    n = x.size
-    nz = 0
-    for b in range(b0, b1):
-        s = 0.0
-        first = True
-        for j in range(0, BLOCK, NOISE_STRIDE):
-            i = b * BLOCK + j
-            v = 0.0
-            if i < n:
-                v = max(min(x[i] - base[b], 0.0), -clip)
-                if v != 0.0:
-                    nz += 1
-            s = v if first else s + v
-            first = False
-        out[b - b0] = s
-    return nz
+# the noise state carried between batches (a float array, see scan_batch)
+(NZ_SIGMA, NZ_EMA_SUM, NZ_EMA_COUNT, NZ_HAS_EMA, NZ_GROUP_SUM, NZ_GROUP_COUNT, NZ_GROUP_MAX,
+ NZ_RUN_MAX) = range(8)
 
 
 @njit(cache=True, nogil=True)
-def hysteresis(x, a, base, sigma, lo_sigma, hi_sigma, min_height, open_start, open_trig, final,
-               starts, ends, end_blocks):
-    """Runs of samples above the re-arm level that reach the trigger level.
+def scan_batch(x, a, means, base, lo_sigma, hi_sigma, min_height, clip_sigma, group_blocks,
+               alpha, kappa, floor, final, noise, open_start, open_trig, starts, ends,
+               end_blocks, sigma_at):
+    """One batch of samples (stream index a on, whole blocks but perhaps the last):
+    the noise level, and runs above the re-arm level that reach the trigger level.
 
-    Sample i of the batch (stream index a + i, block i // BLOCK) is above the
-    re-arm level when ``x[i] > base + lo_sigma * sigma`` and triggers when
-    ``x[i] > base + max(hi_sigma * sigma, min_height)`` (base and sigma per
-    block). ``open_start`` (-1 for none) is a run still open from the
-    previous batch, ``open_trig`` whether it has triggered. Writes the
-    completed triggered runs as stream indices [start, end) and the block
-    (in the batch) of the sample that ended each run (of the last sample when
-    the batch's end did); a run still open at the end
-    is carried unless ``final``. Returns (runs written, open start, open trig).
+    Noise: on every NOISE_STRIDE-th sample, the excursion below the baseline
+    ``min(x - base, 0)`` clipped at ``clip_sigma`` sigmas (the sigma in force,
+    so spikes and dropouts do not inflate it), summed in sample order over a
+    group of ``group_blocks`` blocks; at each group's end (and at the end of
+    the stream when ``final``) the group's sum and count of non-zero terms
+    enter running averages with weight ``alpha``, and sigma becomes
+    ``kappa * average excursion``, at least ``floor`` and 1e-3 of the
+    largest block excess ``means - base`` seen. ``noise`` (NZ_* fields) is
+    updated in place; ``sigma_at`` gets the sigma in force for each block.
+
+    Hysteresis: sample i (block b = i // BLOCK) is above the re-arm level
+    when ``x[i] > base[b] + lo_sigma * sigma`` and triggers when
+    ``x[i] > base[b] + max(hi_sigma * sigma, min_height)``. ``open_start``
+    (-1 for none) is a run still open from the previous batch, ``open_trig``
+    whether it has triggered. Writes the completed triggered runs as stream
+    indices [start, end) and the block (in the batch) of the sample that
+    ended each (of the last sample when the stream's end did); a run still
+    open at the end is carried unless ``final``. Returns (runs written,
+    open start, open trig).
     """
     n = x.size
+    nb = base.size
     k = 0
     run = open_start
     trig = open_trig if run >= 0 else False
-    b_cur = -1
-    lo_t = 0.0
-    hi_t = 0.0
-    for i in range(n):
-        b = i // BLOCK
-        if b != b_cur:
-            b_cur = b
-            lo_t = base[b] + lo_sigma * sigma[b]
-            hi_t = base[b] + max(hi_sigma * sigma[b], min_height)
-        v = x[i]
-        if v > lo_t:
-            if run < 0:
-                run = a + i
+    # the noise state in locals (array elements would be re-read and re-written per block)
+    sigma = noise[NZ_SIGMA]
+    ema_sum, ema_cnt, has_ema = noise[NZ_EMA_SUM], noise[NZ_EMA_COUNT], noise[NZ_HAS_EMA]
+    g_sum, g_cnt, g_max, r_max = (noise[NZ_GROUP_SUM], noise[NZ_GROUP_COUNT],
+                                  noise[NZ_GROUP_MAX], noise[NZ_RUN_MAX])
+    b_first = a // BLOCK
+    for b in range(nb):
+        i0 = b * BLOCK
+        i1 = min(i0 + BLOCK, n)
+        sigma_at[b] = sigma
+        bl = base[b]
+        # noise terms of this block, in sample order
+        clip = -(clip_sigma * sigma)
+        s = 0.0
+        first = True
+        for j in range(0, BLOCK, NOISE_STRIDE):
+            v = 0.0
+            if i0 + j < n:
+                v = max(min(x[i0 + j] - bl, 0.0), clip)
+                if v != 0.0:
+                    g_cnt += 1.0
+            s = v if first else s + v
+            first = False
+        g_sum += s
+        g_max = max(g_max, means[b] - bl)
+        # hysteresis over the block's samples
+        lo_t = bl + lo_sigma * sigma
+        hi_t = bl + max(hi_sigma * sigma, min_height)
+        for i in range(i0, i1):
+            v = x[i]
+            if v > lo_t:
+                if run < 0:
+                    run = a + i
+                    trig = False
+                if v > hi_t:
+                    trig = True
+            elif run >= 0:
+                if trig:
+                    starts[k] = run
+                    ends[k] = a + i
+                    end_blocks[k] = b
+                    k += 1
+                run = -1
                 trig = False
-            if v > hi_t:
-                trig = True
-        elif run >= 0:
-            if trig:
-                starts[k] = run
-                ends[k] = a + i
-                end_blocks[k] = i // BLOCK
-                k += 1
-            run = -1
-            trig = False
+        # the end of a noise group: a new sigma for the blocks after it
+        if (b_first + b + 1) % group_blocks == 0 or (final and b == nb - 1):
+            if has_ema == 0.0:
+                ema_sum, ema_cnt, has_ema = -g_sum, g_cnt, 1.0
+            else:
+                ema_sum = (1 - alpha) * ema_sum + alpha * -g_sum
+                ema_cnt = (1 - alpha) * ema_cnt + alpha * g_cnt
+            r_max = max(r_max, g_max)
+            g_sum, g_cnt, g_max = 0.0, 0.0, 0.0
+            sig = kappa * ema_sum / ema_cnt if ema_cnt > 0 else sigma
+            sigma = max(max(sig, floor), 1e-3 * r_max)
+    noise[NZ_SIGMA] = sigma
+    noise[NZ_EMA_SUM], noise[NZ_EMA_COUNT], noise[NZ_HAS_EMA] = ema_sum, ema_cnt, has_ema
+    noise[NZ_GROUP_SUM], noise[NZ_GROUP_COUNT] = g_sum, g_cnt
+    noise[NZ_GROUP_MAX], noise[NZ_RUN_MAX] = g_max, r_max
     if run >= 0 and final:
         if trig:
             starts[k] = run
             ends[k] = a + n
-            end_blocks[k] = (n - 1) // BLOCK
+            end_blocks[k] = nb - 1
             k += 1
         run = -1
         trig = False
@@ -176,17 +203,26 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
     block b0. Columns: out_f = pos, area, height, hmed, pmin, pmax, step;
     out_i = peak, partial.
     """
+    longest = 0
+    for j in range(st.size):
+        longest = max(longest, en[j] - st[j])
+    r = np.empty(longest + 2)
+    med = np.empty(longest)
     for j in range(st.size):
         s, e = st[j], en[j]
+        ln = e - s
+        for i in range(ln + 2):
+            r[i] = _excess(x, base, t0, b0, final, s - 1 + i)
         hraw = -np.inf
         hmed = -np.inf
         peak = s
-        for i in range(s, e):
-            r0 = _excess(x, base, t0, b0, final, i)
+        for i in range(ln):
+            rm, r0, rp = r[i], r[i + 1], r[i + 2]
+            m = max(min(rm, r0), min(max(rm, r0), rp))
+            med[i] = m
             if r0 > hraw:
                 hraw = r0
-                peak = i
-            m = _median3(x, base, t0, b0, final, i)
+                peak = s + i
             if m > hmed:
                 hmed = m
         half = 0.5 * hmed
@@ -195,25 +231,24 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
         swp = 0.0
         pmin = np.inf
         pmax = -np.inf
-        for i in range(s, e):
-            m = _median3(x, base, t0, b0, final, i)
+        for i in range(ln):
+            m = med[i]
             w = max(m - half, 0.0)
-            q = p[i - t0]
+            q = p[s + i - t0]
             sw += w
             swp += w * (q - ref)
             if m >= half:
                 pmin = min(pmin, q)
                 pmax = max(pmax, q)
         cen = swp / sw if sw > 0 else 0.0
-        partial = ((cut_l[j] and _median3(x, base, t0, b0, final, s) >= half)
-                   or (cut_r[j] and _median3(x, base, t0, b0, final, e - 1) >= half))
+        partial = (cut_l[j] and med[0] >= half) or (cut_r[j] and med[ln - 1] >= half)
         out_f[j, 0] = ref + cen
         out_f[j, 1] = sw
         out_f[j, 2] = hraw if hraw <= 2.5 * hmed else hmed
         out_f[j, 3] = hmed
         out_f[j, 4] = pmin
         out_f[j, 5] = pmax
-        out_f[j, 6] = abs(p[e - 1 - t0] - ref) / max(e - s - 1, 1)
+        out_f[j, 6] = abs(p[e - 1 - t0] - ref) / max(ln - 1, 1)
         out_i[j, 0] = peak
         out_i[j, 1] = 1 if partial else 0
 
@@ -259,3 +294,49 @@ def valley_cuts(x, base, t0, b0, final, st, en, long_, need, cuts):
             cuts[k] = s + low_i
             k += 1
     return k
+
+
+@njit(cache=True, nogil=True)
+def _sliding(a, w, take_max, out):
+    """Minimum (or maximum) over a centred window of w (odd) values, the ends
+    extended with the end values: scipy.ndimage's minimum_filter1d /
+    maximum_filter1d with mode="nearest", by van Herk's and Gil & Werman's
+    method (prefix and suffix extrema within blocks of w: three passes, any w)."""
+    n = a.size
+    h = w // 2
+    L = n + 2 * h
+    pad = np.empty(L)
+    for i in range(L):
+        pad[i] = a[min(max(i - h, 0), n - 1)]
+    pre = np.empty(L)
+    suf = np.empty(L)
+    for i in range(L):
+        v = pad[i]
+        if i % w == 0:
+            pre[i] = v
+        elif take_max:
+            pre[i] = max(pre[i - 1], v)
+        else:
+            pre[i] = min(pre[i - 1], v)
+    for i in range(L - 1, -1, -1):
+        v = pad[i]
+        if i == L - 1 or (i + 1) % w == 0:
+            suf[i] = v
+        elif take_max:
+            suf[i] = max(suf[i + 1], v)
+        else:
+            suf[i] = min(suf[i + 1], v)
+    for i in range(n):
+        if take_max:
+            out[i] = max(suf[i], pre[i + w - 1])
+        else:
+            out[i] = min(suf[i], pre[i + w - 1])
+
+
+@njit(cache=True, nogil=True)
+def grey_opening(a, w, out):
+    """A sliding minimum then a sliding maximum over w values (the ends extended):
+    what is left of a signal under its narrow peaks."""
+    tmp = np.empty(a.size)
+    _sliding(a, w, False, tmp)
+    _sliding(tmp, w, True, out)
