@@ -10,6 +10,7 @@ limited by zlib and the counter, not by Python.
 from __future__ import annotations
 
 import json
+import queue
 import threading
 import time
 import zlib
@@ -19,7 +20,7 @@ from typing import Callable, Iterator
 import numpy as np
 
 from daq.engine import FLUSH_SAMPLES, LiveState
-from daq.runlog import LogError, RunLog, _unpack_delta, _unpack_float, _unpack_small
+from daq.runlog import LogError, RunLog, _unpack_delta, _unpack_float
 
 STATE_EVERY_S = 0.1          # how often the dashboard's LiveState is refreshed
 COMMIT_EVERY_S = 1.0         # how often a new log is committed (as the engine: at least once a second)
@@ -57,8 +58,9 @@ def iter_chunks(log: RunLog, with_time: bool = False, with_all: bool = False,
     for row in cur:
         first_i, n = row[0], row[1]
         try:
-            c = Chunk(first_i, _unpack_delta(row[2]), _unpack_small(row[3], "<i1"),
-                      _unpack_small(row[4], "<i2"), _unpack_float(row[5], n))
+            # directions and passes as stored (int8, int16): the counter takes any integers
+            c = Chunk(first_i, _unpack_delta(row[2]), np.frombuffer(zlib.decompress(row[3]), "<i1"),
+                      np.frombuffer(zlib.decompress(row[4]), "<i2"), _unpack_float(row[5], n))
             if with_time or with_all:
                 c.t_s = _unpack_delta(row[6]) / 1e6
             if with_all:
@@ -74,6 +76,59 @@ def iter_chunks(log: RunLog, with_time: bool = False, with_all: bool = False,
             yield Chunk(first_i + k, c.position_steps[sl], c.direction[sl], c.pass_index[sl], c.value[sl],
                         None if c.t_s is None else c.t_s[sl], None if c.spread is None else c.spread[sl],
                         None if c.aux is None else {a: v[sl] for a, v in c.aux.items()})
+
+
+READ_AHEAD_SAMPLES = 1 << 20   # decoded samples the reader thread may hold ready (~30 MB)
+_END = object()
+
+
+def iter_chunks_ahead(log: RunLog, with_time: bool = False, with_all: bool = False,
+                      max_samples: int = FLUSH_SAMPLES) -> Iterator[Chunk]:
+    """iter_chunks on a thread of its own, with its own read-only connection.
+
+    SQLite and zlib release the GIL, so reading and decompressing the next
+    blocks overlaps the counting (and the counter's start-up) on another
+    core. The queue is bounded, so memory stays bounded; errors (a damaged
+    block) are raised here, in order, as iter_chunks would raise them.
+    """
+    q: queue.Queue = queue.Queue(maxsize=max(2, READ_AHEAD_SAMPLES // max_samples))
+    stop = threading.Event()
+
+    def put(item) -> bool:
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                pass
+        return False
+
+    def read() -> None:
+        try:
+            own = RunLog.open(log.path)
+            try:
+                for c in iter_chunks(own, with_time, with_all, max_samples):
+                    if not put(c):
+                        return
+            finally:
+                own.close()
+            put(_END)
+        except BaseException as exc:      # handed over to the consumer, raised there
+            put(exc)
+
+    reader = threading.Thread(target=read, name=f"log reader {log.path.name}", daemon=True)
+    reader.start()
+    try:
+        while True:
+            item = q.get()
+            if item is _END:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        reader.join(timeout=5)
 
 
 def first_time_s(log: RunLog) -> float:
@@ -164,7 +219,7 @@ class Replay:
         next_state = next_commit = t_start
         status = "finished"
         last = None
-        for c in iter_chunks(self.log, with_time=paced, with_all=out is not None):
+        for c in iter_chunks_ahead(self.log, with_time=paced, with_all=out is not None):
             if self.stop_flag():
                 status = "stopped"
                 break

@@ -8,10 +8,12 @@ Layout (all tables are plain SQLite, readable with the sqlite3 shell):
   ``status`` (running / finished / stopped / faulted / aborted), ``reason``,
   ``summary_json``, ``counter_state`` (for --resume).
 * ``sample_blocks``: samples in blocks of consecutive rows. Each column is a
-  zlib-compressed little-endian array: ``t_us`` int64 microseconds since the
-  run started and ``pos`` int64 steps, both delta-encoded; ``dir`` and
-  ``pass`` int8/int16; ``value`` and ``spread`` float64, byte-shuffled (the
-  exponent bytes then compress). ``aux_json`` holds auxiliary channels as
+  little-endian array: ``t_us`` int64 microseconds since the run started and
+  ``pos`` int64 steps, both as the first value and zlib-compressed deltas in
+  the smallest integer type that holds them; ``dir`` and ``pass``
+  zlib-compressed int8/int16; ``value`` and ``spread`` float64 as eight byte
+  planes (the exponent planes compress, the noisy low mantissa planes are
+  stored raw). ``aux_json`` holds auxiliary channels as
   ``{name: [floats]}`` or is NULL. Blocks keep a night's tens of millions of
   samples at a few bytes each, where a row per sample costs 30-40 bytes.
 * ``events(i, t_s, kind, pos, dir, mode, height, width, detail)``: blips,
@@ -36,7 +38,7 @@ import numpy as np
 from daq import __version__
 
 FORMAT = "modetick-run-log"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2      # 2: tagged column codecs (below); format 1 logs still read
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
@@ -66,14 +68,41 @@ def default_log_path(root: Path | None = None) -> Path:
 
 # --- column codecs ---------------------------------------------------------
 
+# Format 2 columns start with a tag byte no zlib stream starts with (zlib's first
+# byte is 0x78 at every level used here); format 1 columns are one zlib stream.
+_TAG_DELTA = b"\x01"    # int64 first value, then zlib(the deltas in the smallest int type)
+_TAG_PLANES = b"\x02"   # 8 byte planes, each zlib-compressed or, where that saves little, raw
+_DELTA_TYPES = ("<i1", "<i2", "<i4", "<i8")
+_EMPTY = 255             # delta type code of an empty column
+_RAW, _ZLIB = 0, 1
+
+
 def _pack_delta(a: np.ndarray) -> bytes:
     a = np.asarray(a, dtype=np.int64)
-    d = np.diff(a, prepend=np.int64(0)) if a.size else a
-    return zlib.compress(d.astype("<i8").tobytes(), 1)
+    if a.size == 0:
+        return _TAG_DELTA + bytes([_EMPTY])
+    d = np.diff(a)
+    code = 3
+    if d.size:
+        lo, hi = int(d.min()), int(d.max())
+        code = next(c for c, t in enumerate(_DELTA_TYPES)
+                    if np.iinfo(t).min <= lo and hi <= np.iinfo(t).max)
+    return (_TAG_DELTA + bytes([code]) + np.int64(a[0]).astype("<i8").tobytes()
+            + zlib.compress(d.astype(_DELTA_TYPES[code]).tobytes(), 1))
 
 
 def _unpack_delta(b: bytes) -> np.ndarray:
-    return np.cumsum(np.frombuffer(zlib.decompress(b), dtype="<i8"))
+    if b[:1] != _TAG_DELTA:                          # format 1
+        return np.cumsum(np.frombuffer(zlib.decompress(b), dtype="<i8"))
+    if b[1] == _EMPTY:
+        return np.zeros(0, np.int64)
+    first = int(np.frombuffer(b, "<i8", 1, 2)[0])
+    d = np.frombuffer(zlib.decompress(b[10:]), dtype=_DELTA_TYPES[b[1]])
+    out = np.empty(d.size + 1, np.int64)
+    out[0] = first
+    np.cumsum(d, out=out[1:])
+    out[1:] += first
+    return out
 
 
 def _pack_small(a: np.ndarray, dtype: str) -> bytes:
@@ -85,13 +114,32 @@ def _unpack_small(b: bytes, dtype: str) -> np.ndarray:
 
 
 def _pack_float(a: np.ndarray) -> bytes:
-    raw = np.ascontiguousarray(a, dtype="<f8").view(np.uint8).reshape(-1, 8)
-    return zlib.compress(raw.T.tobytes(), 1)
+    """Byte planes of the float64s: the sign/exponent planes compress well; the low
+    mantissa planes of a noisy reading do not, and are kept raw (fast to read back)."""
+    planes = np.ascontiguousarray(np.ascontiguousarray(a, dtype="<f8").view(np.uint8).reshape(-1, 8).T)
+    modes, parts = [], []
+    for plane in planes:
+        raw = plane.tobytes()
+        z = zlib.compress(raw, 1)
+        use = len(z) < 0.9 * len(raw)
+        modes.append(_ZLIB if use else _RAW)
+        parts.append(z if use else raw)
+    sizes = np.array([len(p) for p in parts], "<u4").tobytes()
+    return _TAG_PLANES + bytes(modes) + sizes + b"".join(parts)
 
 
 def _unpack_float(b: bytes, n: int) -> np.ndarray:
-    raw = np.frombuffer(zlib.decompress(b), dtype=np.uint8).reshape(8, n)
-    return np.ascontiguousarray(raw.T).view("<f8").reshape(n)
+    if b[:1] != _TAG_PLANES:                         # format 1: one shuffled zlib stream
+        raw = np.frombuffer(zlib.decompress(b), dtype=np.uint8).reshape(8, n)
+        return np.ascontiguousarray(raw.T).view("<f8").reshape(n)
+    sizes = np.frombuffer(b, "<u4", 8, 9)
+    out = np.empty((n, 8), np.uint8)
+    at = 41
+    for j in range(8):
+        part = b[at:at + int(sizes[j])]
+        at += int(sizes[j])
+        out[:, j] = np.frombuffer(zlib.decompress(part) if b[1 + j] == _ZLIB else part, np.uint8)
+    return out.view("<f8").reshape(n)
 
 
 @dataclass
