@@ -68,7 +68,7 @@ GROUP = 8192         # samples per noise update (a multiple of BLOCK)
 INIT_NOISE = 2048    # samples the first noise level is taken from
 NOISE_CLIP = 4.0     # excursions below the baseline count at most this many sigma
 EVENT_GROUP = 65536  # samples per update of the running spacing and typical blip
-BATCH = 65536        # samples the work waits for (or max_latency_s), see StreamCounter;
+BATCH = 262144       # samples the work waits for (or max_latency_s), see StreamCounter;
                      # also the most done in one pass: bigger temporaries cost page faults
 EVENT_MIN = 64       # candidates that wait to be counted together (see max_latency_s)
 N_INIT = 12          # candidates in one run before the spacing is first estimated
@@ -241,12 +241,7 @@ class _Buf:
             self.extend(np.asarray(data, dtype))
 
     def extend(self, v: np.ndarray) -> None:
-        at = self.reserve(v.size)
-        self.arr[at:at + v.size] = v
-        self.commit(v.size)
-
-    def reserve(self, n: int) -> int:
-        """Make room for n more values; returns where they go (then commit(n))."""
+        n = v.size
         if self.hi + n > self.arr.size:
             live = self.hi - self.lo
             cap = self.arr.size
@@ -255,9 +250,7 @@ class _Buf:
             new = np.empty(cap, self.dtype) if cap != self.arr.size or self.lo < live else self.arr
             new[:live] = self.arr[self.lo:self.hi]
             self.arr, self.lo, self.hi = new, 0, live
-        return self.hi
-
-    def commit(self, n: int) -> None:
+        self.arr[self.hi:self.hi + n] = v
         self.hi += n
 
     def drop(self, k: int) -> None:
@@ -459,18 +452,14 @@ class StreamCounter:
         if p.size == 0:
             return self._take()
         n = x.size
-        at = self._xb.reserve(n)
-        self._pb.reserve(n)
-        self._db.reserve(n)
-        # one compiled pass checks the values and directions and stores the samples
-        ok = kern.store_samples(p, d, x, self._pb.arr, self._db.arr, self._xb.arr, at)
+        ok = kern.check_chunk(d, x)
         if ok < 0:
             raise ValueError("feed: value contains NaN or infinity")
         if ok == 0:                      # directions other than +1 / -1
             d = self._directions(d)
-            kern.store_samples(p, d, x, self._pb.arr, self._db.arr, self._xb.arr, at)
-        for buf in (self._xb, self._pb, self._db):
-            buf.commit(n)
+        self._xb.extend(x)
+        self._pb.extend(p)
+        self._db.extend(d)
         self._n += n
         self._last_in = int(self._db.arr[self._db.hi - 1])
         now = time.monotonic()
@@ -688,35 +677,35 @@ class StreamCounter:
     def _measure(self, st, en, cut_l, cut_r, conf=None) -> dict[str, np.ndarray]:
         """Centre, area, height, extent and direction of candidate runs (signal_kernels.measure_runs).
 
-        With ``conf`` (the confirm level of each run), a run longer than 0.6
-        spacing that holds two blips is first cut at the valley between them
-        (signal_kernels.valley_cuts) and the pieces are measured instead.
+        With ``conf`` (the confirm level of each run), runs longer than 0.6
+        spacing that hold two blips are cut at the valley between them, and
+        the pieces are measured instead.
         """
-        t0, x, bb, final = self._t0, self._x, self._bb, self._final_scan
+        t0, final = self._t0, self._final_scan
         st = np.ascontiguousarray(st, np.int64)
         en = np.ascontiguousarray(en, np.int64)
-        if conf is not None:
+        if conf is None:
+            long_, need = np.zeros(st.size, np.bool_), np.zeros(st.size)
+        else:
             long_ = (np.abs(self._p[en - 1 - t0] - self._p[st - t0]) > 0.6 * self._S
-                     if self._S else np.ones(st.size, bool))
-            if long_.any():
-                need = conf * (self._hi / self._conf)
-                cuts = np.empty(int((en - st)[long_].sum()) // 2 + 1, np.int64)
-                k = kern.valley_cuts(x, bb, t0, self._bb0, final, st, en, long_, need, cuts)
-                if k:
-                    s2 = np.unique(np.concatenate((st, cuts[:k])))           # piece starts
-                    owner = np.searchsorted(st, s2, side="right") - 1
-                    same = np.append(owner[1:] == owner[:-1], False)
-                    e2 = np.where(same, np.append(s2[1:], 0), en[owner])
-                    out = self._measure(s2, e2, cut_l[owner] & (s2 == st[owner]), cut_r[owner] & ~same)
-                    out["_conf"] = conf[owner]
-                    return out
+                     if self._S else np.ones(st.size, np.bool_))
+            need = conf * (self._hi / self._conf)
+        cut_l0, cut_r0 = cut_l, cut_r
         cut_l = cut_l | (st == 0)
-        if final:
-            cut_r = cut_r | (en >= self._n)
+        cut_r = (cut_r | (en >= self._n)) if final else cut_r
         out_f, out_i = np.empty((st.size, 7)), np.empty((st.size, 2), np.int64)
-        kern.measure_runs(x, self._p, bb, t0, self._bb0, final, st, en,
-                          np.ascontiguousarray(cut_l, np.bool_), np.ascontiguousarray(cut_r, np.bool_),
-                          out_f, out_i)
+        cuts = np.empty(int((en - st)[long_].sum()) // 2 + 1, np.int64)
+        k = kern.measure_runs(self._x, self._p, self._bb, t0, self._bb0, final, st, en,
+                              np.ascontiguousarray(cut_l, np.bool_), np.ascontiguousarray(cut_r, np.bool_),
+                              long_, need, out_f, out_i, cuts)
+        if k:
+            s2 = np.unique(np.concatenate((st, cuts[:k])))           # piece starts
+            owner = np.searchsorted(st, s2, side="right") - 1
+            same = np.append(owner[1:] == owner[:-1], False)
+            e2 = np.where(same, np.append(s2[1:], 0), en[owner])
+            out = self._measure(s2, e2, cut_l0[owner] & (s2 == st[owner]), cut_r0[owner] & ~same)
+            out["_conf"] = conf[owner]
+            return out
         return {"start": st, "end": en, "peak": out_i[:, 0].copy(), "pos": out_f[:, 0].copy(),
                 "area": out_f[:, 1].copy(), "height": out_f[:, 2].copy(), "hmed": out_f[:, 3].copy(),
                 "d": self._d[st - t0].astype(np.int64), "partial": out_i[:, 1].astype(bool),

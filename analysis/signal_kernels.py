@@ -18,25 +18,23 @@ NOISE_STRIDE = 4     # every 4th sample feeds the noise level (counter.NOISE_STR
 
 
 @njit(cache=True, nogil=True)
-def store_samples(p, d, x, P, D, X, at):
-    """Copy one chunk into the sample buffers at ``at``, checking it on the way.
+def check_chunk(d, x):
+    """-1 if a value is not finite, 0 if a direction is not +1 or -1, else 1.
 
-    Returns -1 if a value is not finite (the caller then rejects the chunk),
-    0 if a direction is not +1 or -1 (the caller fixes them and stores
-    again), 1 when all is stored.
+    Two branch-free reductions (they compile to vector code); numpy copies
+    the chunk into place, which is faster than any loop here.
     """
-    ok = 1
+    big = 1.7976931348623157e308
+    bad = False
     for i in range(x.size):
-        v = x[i]
-        if not np.isfinite(v):
-            return -1
+        bad |= not (abs(x[i]) <= big)     # inf and NaN fail the comparison
+    if bad:
+        return -1
+    off = False
+    for i in range(d.size):
         di = d[i]
-        if di != 1 and di != -1:
-            ok = 0
-        X[at + i] = v
-        P[at + i] = p[i]
-        D[at + i] = di
-    return ok
+        off |= (di != 1) & (di != -1)
+    return 0 if off else 1
 
 
 @njit(cache=True, nogil=True)
@@ -189,8 +187,9 @@ def _median3(x, base, t0, b0, final, i):
 
 
 @njit(cache=True, nogil=True)
-def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
-    """Centre, area, height and extent of each candidate run [st, en) (stream indices).
+def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, out_f, out_i, cuts):
+    """Centre, area, height and extent of each candidate run [st, en) (stream indices),
+    and where runs holding two blips are to be cut.
 
     With r the excess over the baseline and med its 3-point median: the
     centre is the med-above-half-maximum weighted mean position (so tails, a
@@ -202,21 +201,32 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
     crossed. ``x``, ``p`` start at stream index t0, ``base`` (per block) at
     block b0. Columns: out_f = pos, area, height, hmed, pmin, pmax, step;
     out_i = peak, partial.
+
+    Valleys (in runs flagged ``long_``): a stretch where med lies below half
+    the lower of the highest values on its left and on its right within the
+    run, that lower value reaching ``need`` (the trigger level): a trough the
+    signal never got back down to the re-arm level in, e.g. under drift the
+    baseline could not follow. The stream index of each valley's lowest
+    sample goes to ``cuts``, in order; returns how many.
     """
     longest = 0
     for j in range(st.size):
         longest = max(longest, en[j] - st[j])
     r = np.empty(longest + 2)
     med = np.empty(longest)
+    right = np.empty(longest)
+    k = 0
     for j in range(st.size):
         s, e = st[j], en[j]
         ln = e - s
-        for i in range(ln + 2):
-            r[i] = _excess(x, base, t0, b0, final, s - 1 + i)
+        # pass 1: excess, its 3-point median, the maxima
+        r[0] = _excess(x, base, t0, b0, final, s - 1)
+        r[1] = _excess(x, base, t0, b0, final, s)
         hraw = -np.inf
         hmed = -np.inf
         peak = s
         for i in range(ln):
+            r[i + 2] = _excess(x, base, t0, b0, final, s + i + 1)
             rm, r0, rp = r[i], r[i + 1], r[i + 2]
             m = max(min(rm, r0), min(max(rm, r0), rp))
             med[i] = m
@@ -225,14 +235,35 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
                 peak = s + i
             if m > hmed:
                 hmed = m
+        # pass 2 (long runs): the highest value to the right of each sample
+        if long_[j]:
+            top = -np.inf
+            for i in range(ln - 1, -1, -1):
+                top = max(top, med[i])
+                right[i] = top
+        # pass 3: valleys, and the weights above half height
         half = 0.5 * hmed
         ref = p[s - t0]
         sw = 0.0
         swp = 0.0
         pmin = np.inf
         pmax = -np.inf
+        left = -np.inf
+        low_i = -1
+        check = long_[j]
+        nd = need[j]
         for i in range(ln):
             m = med[i]
+            if check:
+                left = max(left, m)
+                side = min(left, right[i])
+                if m < 0.5 * side and side >= nd:
+                    if low_i < 0 or m < med[low_i]:
+                        low_i = i
+                elif low_i >= 0:
+                    cuts[k] = s + low_i
+                    k += 1
+                    low_i = -1
             w = max(m - half, 0.0)
             q = p[s + i - t0]
             sw += w
@@ -240,6 +271,9 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
             if m >= half:
                 pmin = min(pmin, q)
                 pmax = max(pmax, q)
+        if low_i >= 0:
+            cuts[k] = s + low_i
+            k += 1
         cen = swp / sw if sw > 0 else 0.0
         partial = (cut_l[j] and med[0] >= half) or (cut_r[j] and med[ln - 1] >= half)
         out_f[j, 0] = ref + cen
@@ -251,48 +285,6 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, out_f, out_i):
         out_f[j, 6] = abs(p[e - 1 - t0] - ref) / max(ln - 1, 1)
         out_i[j, 0] = peak
         out_i[j, 1] = 1 if partial else 0
-
-
-@njit(cache=True, nogil=True)
-def valley_cuts(x, base, t0, b0, final, st, en, long_, need, cuts):
-    """Where runs holding two blips are to be cut: each valley's lowest sample.
-
-    A valley (in a run flagged ``long_``) is a stretch where the 3-point
-    median lies below half the lower of the highest values on its left and
-    on its right within the run, and that lower value reaches ``need`` (the
-    trigger level): a trough the signal never got back down to the re-arm
-    level in, e.g. under drift the baseline could not follow. Writes the
-    stream indices of the cuts, in order; returns how many.
-    """
-    k = 0
-    for j in range(st.size):
-        if not long_[j]:
-            continue
-        s, e = st[j], en[j]
-        ln = e - s
-        med = np.empty(ln)
-        for i in range(ln):
-            med[i] = _median3(x, base, t0, b0, final, s + i)
-        right = np.empty(ln)
-        top = -np.inf
-        for i in range(ln - 1, -1, -1):
-            top = max(top, med[i])
-            right[i] = top
-        left = -np.inf
-        low_i = -1
-        for i in range(ln):
-            left = max(left, med[i])
-            side = min(left, right[i])
-            if med[i] < 0.5 * side and side >= need[j]:
-                if low_i < 0 or med[i] < med[low_i]:
-                    low_i = i
-            elif low_i >= 0:
-                cuts[k] = s + low_i
-                k += 1
-                low_i = -1
-        if low_i >= 0:
-            cuts[k] = s + low_i
-            k += 1
     return k
 
 
