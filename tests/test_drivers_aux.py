@@ -15,7 +15,7 @@ from drivers.base import DeviceError
 from drivers.registry import open_devices
 from sims.emulators import (LaserController, LockedPhysics, PhotodiodeMeter, StepperProtocol,
                             start_instrument, start_line_meter, start_stepper, visa_resource)
-from tests.test_drivers_support import comb, section, sections, stepper_stage_keys, wait_for  # noqa: F401
+from tests.test_drivers_support import REPLY_S, comb, section, sections, stepper_stage_keys, wait_for  # noqa: F401
 
 SIM_YAML = Path(__file__).resolve().parent.parent / "sims" / "emulators" / "bench-sim.yaml"
 
@@ -41,20 +41,20 @@ def bench(comb):
 def rig(bench, channels: list[dict]) -> dict:
     """A rig over the three emulators with the given aux channels (an array of inline tables)."""
     stepper, ctl, meter, laser, laser_inst, raw = bench
-    det = dict(driver="visa-scpi", resource=visa_resource(meter), timeout_s=0.3, backoff_s=0.01)
+    det = dict(driver="visa-scpi", resource=visa_resource(meter), timeout_s=REPLY_S, backoff_s=0.01)
     tables = ", ".join(f'{{ name = "{c["name"]}", query = "{c["query"]}" }}' for c in channels)
-    extra = section("aux", resource=visa_resource(laser), timeout_s=0.3, backoff_s=0.01) \
+    extra = section("aux", resource=visa_resource(laser), timeout_s=REPLY_S, backoff_s=0.01) \
         + f"channels = [{tables}]\n"
     return sections(stepper_stage_keys(stepper.path, StepperProtocol()), det, extra=extra)
 
 
 def rig_text_setpoints(bench, allow_write: bool, value: float, lo: float = 20.0, hi: float = 30.0) -> dict:
     stepper, ctl, meter, laser, laser_inst, raw = bench
-    extra = (section("aux", resource=visa_resource(laser), allow_write=allow_write, timeout_s=0.3)
+    extra = (section("aux", resource=visa_resource(laser), allow_write=allow_write, timeout_s=REPLY_S)
              + 'channels = [{ name = "temp_C", query = "SOUR:TEMP?" }]\n'
              + f'setpoints = [{{ command = "SOUR:TEMP {{value:.3f}}", value = {value}, min = {lo}, '
                f'max = {hi}, readback = "SOUR:TEMP?" }}]\n')
-    det = dict(driver="visa-scpi", resource=visa_resource(meter), timeout_s=0.3)
+    det = dict(driver="visa-scpi", resource=visa_resource(meter), timeout_s=REPLY_S)
     return sections(stepper_stage_keys(stepper.path, StepperProtocol()), det, extra=extra)
 
 

@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 from drivers.base import TransientDeviceError
 from drivers.replies import parse_steps, parse_value
 from drivers.serial_link import LineLink
+from tests.test_drivers_support import REPLY_S
 
 printable_line = st.text(st.characters(min_codepoint=0x21, max_codepoint=0x7E), min_size=1, max_size=20)
 
@@ -21,24 +22,26 @@ printable_line = st.text(st.characters(min_codepoint=0x21, max_codepoint=0x7E), 
 @settings(max_examples=40, deadline=None)
 @given(st.lists(st.tuples(printable_line, st.sampled_from(["\r", "\n", "\r\n"])), min_size=1, max_size=8))
 def test_any_crlf_ending_splits_lines_the_same(lines):
-    link = LineLink("loop://", baudrate=1_000_000, eol="\r", timeout_s=0.01, label="stage")
+    # Lines that are there get a long timeout (a stalled machine must not miss them);
+    # the read that must find nothing gets a short one, as each example pays it.
+    link = LineLink("loop://", baudrate=1_000_000, eol="\r", timeout_s=REPLY_S, label="stage")
     try:
         link._ser.write("".join(text + end for text, end in lines).encode("ascii"))
         assert [link.read_line("X") for _ in lines] == [text for text, _ in lines]
         with pytest.raises(TransientDeviceError, match="no reply"):
-            link.read_line("X")
+            link.read_line("X", timeout_s=0.01)
     finally:
         link.close()
 
 
 def test_exact_terminator_and_partial_reply():
-    link = LineLink("loop://", baudrate=1_000_000, eol=";", timeout_s=0.05, label="stage")
+    link = LineLink("loop://", baudrate=1_000_000, eol=";", timeout_s=REPLY_S, label="stage")
     link._ser.write(b"A1;B\r2;C3")
     assert link.read_line("Q") == "A1"
     with pytest.raises(TransientDeviceError, match="garbled"):
         link.read_line("Q")                         # a CR inside a line is not printable text
     with pytest.raises(TransientDeviceError) as exc:
-        link.read_line("Q")
+        link.read_line("Q", timeout_s=0.05)         # the partial line is already in: it waits the timeout out
     assert "got 'C3' without the line terminator ';'" in str(exc.value)
     link.close()
 

@@ -12,7 +12,8 @@ import pytest
 from drivers.base import DeviceError, LimitError, TransientDeviceError
 from drivers.registry import DETECTOR_DRIVERS, STAGE_DRIVERS
 from sims.emulators import StepperProtocol, start_line_meter, start_stepper
-from tests.test_drivers_support import comb, one_line, sections, stepper_stage_keys, wait_for  # noqa: F401
+from tests.test_drivers_support import (REPLY_S, WAITED_S, comb, one_line, sections,  # noqa: F401
+                                        stepper_stage_keys, wait_for)
 
 from daq.rig import RigError  # noqa: E402
 
@@ -105,24 +106,28 @@ def test_soft_limits_refuse_before_anything_is_sent(stepper):
 
 def test_garbled_and_late_replies_are_retried(stepper):
     port, ctl, raw = stepper
-    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), retries=3)))
+    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), retries=3,
+                                                   timeout_s=WAITED_S)))
     try:
         port.faults.inject("garble", 2)
         stage.move_to(150)
         assert port.faults.injected["garble"] == 2 and raw.steps == 150
-        port.faults.late_s = 0.35                  # longer than timeout_s = 0.2
+        # Late by well over the timeout, so a stalled machine cannot make it look on time.
+        port.faults.late_s = 1.5 * WAITED_S
         port.faults.inject("late", 1)
         t0 = time.monotonic()
         stage.move_to(151)
         assert raw.steps == 151 and stage.position_steps() == 151
-        assert time.monotonic() - t0 < 2.0
+        assert port.received.count("MA 151") >= 2           # timed out and sent again
+        assert time.monotonic() - t0 < port.faults.late_s + 2 * WAITED_S   # no pile-up of timeouts
     finally:
         stage.close()
 
 
 def test_replies_that_never_come_end_in_one_line_naming_port_and_command(stepper):
     port, ctl, raw = stepper
-    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), retries=2)))
+    # Only timeouts here (every reply is dropped), so a short one keeps the test quick.
+    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), retries=2, timeout_s=0.2)))
     try:
         stops = ctl.motion.stops
         port.faults.inject("drop", 10)
@@ -141,7 +146,9 @@ def test_wrong_terminator(stepper):
     port, ctl, raw = stepper
     # A controller ending lines in \n where the rig file says \r: CR/LF endings are interchangeable.
     port.eol_out = b"\n"
-    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), eol="\r", retries=1)))
+    # The timeouts below are waited out; the partial reply must still come in within one.
+    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), eol="\r", retries=1,
+                                                   timeout_s=WAITED_S)))
     stage.move_to(130)
     assert stage.position_steps() == 130
     # A terminator that is not a line end at all: times out, retried, then a clear error.
@@ -158,7 +165,7 @@ def test_wrong_terminator(stepper):
 
 def test_pulled_cable_mid_sweep(stepper):
     port, ctl, raw = stepper
-    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol())))
+    stage = open_stage(sections(stepper_stage_keys(port.path, StepperProtocol(), timeout_s=REPLY_S)))
     port.faults.close_after = 40                      # about a dozen moves in
     t0 = time.monotonic()
     with pytest.raises(DeviceError) as exc:
@@ -166,7 +173,7 @@ def test_pulled_cable_mid_sweep(stepper):
             stage.move_to(target)
     msg = str(exc.value)
     assert "cable pulled" in msg and port.path in msg and one_line(msg)
-    assert time.monotonic() - t0 < 2.0                # no waiting out timeouts on a dead port
+    assert time.monotonic() - t0 < REPLY_S            # not even one reply timeout waited out on a dead port
     stage.stop()                                      # still safe after the fault
     stage.close()
     stage.close()
@@ -195,12 +202,12 @@ def test_limit_switch_hit_is_a_device_error(comb):
 
 def test_move_timeout_stops_the_motor(comb):
     raw, physics = comb
-    proto = StepperProtocol(speed_steps_per_s=100.0)
+    proto = StepperProtocol(speed_steps_per_s=50.0)
     port, ctl = start_stepper(physics, proto)
     stage = open_stage(sections(stepper_stage_keys(port.path, proto, move_timeout_s=0.15)))
     try:
         with pytest.raises(DeviceError) as exc:
-            stage.move_to(200)                        # 2 s of travel
+            stage.move_to(200)                        # 4 s of travel: far more than any stall
         assert "not finished after 0.15 s" in str(exc.value)
         assert wait_for(lambda: not ctl.motion.busy()) and 0 < raw.steps < 200   # stopped part way
     finally:
@@ -227,13 +234,15 @@ def test_scan_moves_at_the_set_speed(comb):
     try:
         stage.move_to(100)
         t0 = time.monotonic()
-        stage.start_scan(200, 500.0)                  # 100 steps at 500 steps/s = 0.2 s
+        # 100 steps at 100 steps/s = 1 s (the controller's own speed would take 2 ms): long
+        # enough to see the position climb even if polling stalls for half a second.
+        stage.start_scan(200, 100.0)
         seen = []
         while stage.is_moving():
             seen.append(stage.position_steps())
             time.sleep(0.01)
         elapsed = time.monotonic() - t0
-        assert raw.steps == 200 and 0.15 < elapsed < 1.5
+        assert raw.steps == 200 and 0.95 < elapsed < 3.0
         assert len(set(seen)) > 5 and seen == sorted(seen)
     finally:
         stage.close()
@@ -255,7 +264,7 @@ def test_bad_protocol_settings_are_named():
 
 def meter_keys(port_path: str, **overrides) -> dict:
     keys = dict(driver="serial-ascii", port=port_path, eol="\r", query="D?",
-                value_reply=r"D=(?P<value>[-+]?\d+\.\d+e[-+]\d+) V", timeout_s=0.2, backoff_s=0.01)
+                value_reply=r"D=(?P<value>[-+]?\d+\.\d+e[-+]\d+) V", timeout_s=REPLY_S, backoff_s=0.01)
     keys.update(overrides)
     return keys
 

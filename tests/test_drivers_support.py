@@ -11,6 +11,15 @@ import re
 
 import pytest
 
+# Reply timeouts of the rigs tests build. A loaded CI machine (2 cores, fresh VM) can
+# stall a thread for half a second. A reply that is due gets REPLY_S: a read returns
+# as soon as the line is in, so a long timeout costs nothing while all is well.
+REPLY_S = 2.0
+# A test that provokes a timeout on purpose and still needs other replies in time (a
+# retry that must get through, an error that quotes a partial reply or the error queue)
+# uses WAITED_S: longer than a stall, and paid once for every timeout it provokes.
+WAITED_S = 1.0
+
 SWEEP = """
 [sweep]
 start = 100
@@ -58,7 +67,7 @@ def stepper_stage_keys(port: str, proto, **overrides) -> dict:
                 busy_reply=re.escape(proto.busy_reply) if proto.busy_query else None,
                 stop_command=proto.stop, echo=proto.echo, identify_query=proto.identify_query,
                 speed_command=proto.set_speed,
-                timeout_s=0.2, backoff_s=0.01, poll_s=0.001)
+                timeout_s=REPLY_S, backoff_s=0.01, poll_s=0.001)
     keys.update(overrides)
     return keys
 
@@ -75,8 +84,11 @@ def comb():
     return raw, LockedPhysics(raw)
 
 
-def wait_for(condition, timeout_s: float = 1.0) -> bool:
-    """Poll until condition() is true (emulator threads answer asynchronously)."""
+def wait_for(condition, timeout_s: float = 10.0) -> bool:
+    """Poll until condition() is true (emulator threads answer asynchronously).
+
+    Returns as soon as it is; the long limit only matters on a stalled machine.
+    """
     import time
 
     deadline = time.monotonic() + timeout_s

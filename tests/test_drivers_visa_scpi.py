@@ -14,13 +14,13 @@ import pytest
 from drivers.base import DeviceError
 from drivers.registry import DETECTOR_DRIVERS
 from sims.emulators import PhotodiodeMeter, StepperProtocol, start_instrument, start_stepper, visa_resource
-from tests.test_drivers_support import comb, one_line, sections, wait_for  # noqa: F401
+from tests.test_drivers_support import REPLY_S, WAITED_S, comb, one_line, sections, wait_for  # noqa: F401
 
 SIM_YAML = Path(__file__).resolve().parent.parent / "sims" / "emulators" / "bench-sim.yaml"
 
 
 def open_meter(**keys):
-    base = dict(driver="visa-scpi", timeout_s=0.2, backoff_s=0.01)
+    base = dict(driver="visa-scpi", timeout_s=REPLY_S, backoff_s=0.01)
     base.update(keys)
     s = sections({"driver": "sim"}, base)
     return DETECTOR_DRIVERS["visa-scpi"].factory(s, None)
@@ -60,7 +60,8 @@ def test_long_form_query_and_value_reply(meter):
 
 def test_unknown_query_quotes_the_error_queue(meter):
     port, inst, raw = meter
-    det = open_meter(resource=visa_resource(port), query="MEAS:CURR:DC?", retries=1)
+    # Two timeouts waited out; SYST:ERR? in between must still be answered within one.
+    det = open_meter(resource=visa_resource(port), query="MEAS:CURR:DC?", retries=1, timeout_s=WAITED_S)
     with pytest.raises(DeviceError) as exc:
         det.read()
     msg = str(exc.value)
@@ -71,7 +72,7 @@ def test_unknown_query_quotes_the_error_queue(meter):
 
 def test_garbled_and_dropped_replies_are_retried(meter):
     port, inst, raw = meter
-    det = open_meter(resource=visa_resource(port), retries=3)
+    det = open_meter(resource=visa_resource(port), retries=3, timeout_s=WAITED_S)   # the drop is waited out
     raw.steps = 21
     port.faults.inject("garble", 1)
     assert det.read().value == pytest.approx(2.5 * raw.value_at(21) + 0.01, rel=1e-7)
