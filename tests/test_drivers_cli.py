@@ -20,6 +20,11 @@ from sims.emulators.physics import CombPhysics, LockedPhysics
 ROOT = Path(__file__).resolve().parent.parent
 ENV = {**os.environ, "PYTHONPATH": str(ROOT)}
 EMULATED = ROOT / "configs" / "emulated.toml"
+# The example rig waits 0.5 s for a reply; a loaded CI machine can stall that long, and
+# a retried exchange may then read the reply to the one before. Replies are due here, and
+# a longer wait costs nothing while they come.
+DUE_S = 2.0
+DUE = [f"stage.timeout_s={DUE_S}", f"detector.timeout_s={DUE_S}"]
 
 
 def modetick(*args, timeout=60):
@@ -62,7 +67,7 @@ def test_check_identifies_reads_and_moves_nothing(capsys):
     meter = start_instrument(PhotodiodeMeter(physics))
     try:
         code = main(["check", str(EMULATED), "--set", f"stage.port={stepper.path}",
-                     "--set", f"detector.resource={visa_resource(meter)}"])
+                     "--set", f"detector.resource={visa_resource(meter)}", *sets(DUE)])
         out = capsys.readouterr().out
     finally:
         stepper.close()
@@ -76,7 +81,7 @@ def test_check_identifies_reads_and_moves_nothing(capsys):
 def test_check_against_an_emulator_process():
     with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter") as emu:
         r = modetick("check", str(EMULATED), "--json", "--set", f"stage.port={emu.info['stepper']}",
-                     "--set", f"detector.resource={emu.info['meter_resource']}")
+                     "--set", f"detector.resource={emu.info['meter_resource']}", *sets(DUE))
     assert r.returncode == 0, r.stderr
     found = json.loads(r.stdout)
     # the simulated bench powers up at its sweep's start, and the controller reports that
@@ -123,7 +128,7 @@ idle_reply = '\\$STA,RDY'
 busy_reply = '\\$STA,RUN'
 stop_command = "$HLT"
 identify_query = "$VER"
-timeout_s = 0.5
+timeout_s = 2.0                # DUE_S: every reply is due
 min_steps = 0
 max_steps = 20000
 deg_per_step = 2.0e-4
@@ -133,7 +138,7 @@ angle_at_zero_deg = 44.0
 driver = "visa-scpi"
 resource = "{meter}"
 query = "READ?"
-timeout_s = 0.5
+timeout_s = 2.0                # DUE_S
 
 [sweep]
 # Both ends midway between two chip modes: a blip cut in half by an end of the
@@ -156,9 +161,12 @@ seed = 3
 """
 
 
-def run_sweep(rig: Path, log: Path, *sets):
-    args = [a for s in sets for a in ("--set", s)]
-    return modetick("sweep", "--config", str(rig), "--json", "--log", str(log), *args, timeout=120)
+def sets(overrides) -> list[str]:
+    return [a for s in overrides for a in ("--set", s)]
+
+
+def run_sweep(rig: Path, log: Path, *overrides):
+    return modetick("sweep", "--config", str(rig), "--json", "--log", str(log), *sets(overrides), timeout=120)
 
 
 def test_held_out_bench_two_pass_sweep_matches_truth(tmp_path):
@@ -180,11 +188,14 @@ def test_held_out_bench_two_pass_sweep_matches_truth(tmp_path):
 
 def test_sweep_rides_through_transient_faults(tmp_path):
     # A few replies in a thousand garbled or late on both devices: retried, same count.
-    with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter", "--late-s", "0.6",
+    # Late by half a second more than the stage's timeout, so that a stall cannot make
+    # one look on time; the meter's replies are only garbled, and are due.
+    with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter", "--late-s", "1.5",
                          "--fault", "stepper:rate_garble=0.01", "--fault", "stepper:rate_late=0.0005",
                          "--fault", "meter:rate_garble=0.01") as emu:
         r = run_sweep(EMULATED, tmp_path / "run.db", f"stage.port={emu.info['stepper']}",
-                      f"detector.resource={emu.info['meter_resource']}")
+                      f"detector.resource={emu.info['meter_resource']}",
+                      "stage.timeout_s=1.0", f"detector.timeout_s={DUE_S}")
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["modes"] == emu.info["truth"]["modes"] >= 15
 
@@ -195,7 +206,7 @@ def test_cable_pulled_mid_sweep_stops_with_one_line_and_keeps_the_log(tmp_path):
     with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter",
                          "--close-after", "stepper:3000") as emu:
         r = run_sweep(EMULATED, tmp_path / "run.db", f"stage.port={emu.info['stepper']}",
-                      f"detector.resource={emu.info['meter_resource']}")
+                      f"detector.resource={emu.info['meter_resource']}", *DUE)
     assert r.returncode == 1
     last = r.stderr.strip().splitlines()[-1]
     assert "cable pulled" in last and emu.info["stepper"] in last and "Traceback" not in r.stderr
@@ -212,7 +223,7 @@ def test_continuous_scan_through_the_real_drivers(tmp_path):
     with EmulatorProcess("--rig", str(EMULATED), "--set", short, "--stepper", "--meter") as emu:
         r = run_sweep(EMULATED, tmp_path / "run.db", f"stage.port={emu.info['stepper']}",
                       f"detector.resource={emu.info['meter_resource']}", short,
-                      "sweep.mode=scan", "sweep.speed_steps_per_s=2000")
+                      "sweep.mode=scan", "sweep.speed_steps_per_s=2000", *DUE)
     assert r.returncode == 0, r.stderr
     summary = json.loads(r.stdout)
     assert summary["modes"] == emu.info["truth"]["modes"] >= 15
