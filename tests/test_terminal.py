@@ -42,14 +42,38 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
             time.sleep(0.3)
             screen = _tmux("capture-pane", "-p", "-t", session).stdout
         assert "PAUSED" in screen, screen
-        progress = lambda text: re.search(r"(\d+)/\d+ samples", text).group(1)  # noqa: E731
-        first = progress(screen)
+        def progress(text: str) -> int:     # -1 while the pane is caught mid-redraw
+            m = re.search(r"(\d+)/\d+ samples", text)
+            return int(m.group(1)) if m else -1
+
+        def shown() -> int:
+            for _ in range(10):              # caught mid-redraw: look again
+                n = progress(_tmux("capture-pane", "-p", "-t", session).stdout)
+                if n >= 0:
+                    return n
+                time.sleep(0.1)
+            return -1
+        # The last samples before the pause are written by a background thread, so the
+        # count may still catch up after PAUSED shows: take it once two looks agree.
+        first, deadline = shown(), time.time() + 10
+        while True:
+            time.sleep(0.5)
+            again = shown()
+            if again == first >= 0:
+                break
+            assert time.time() < deadline, f"the count did not stand still: {first} then {again}"
+            first = again
         time.sleep(1.0)
-        assert progress(_tmux("capture-pane", "-p", "-t", session).stdout) == first
+        assert shown() == first
         _tmux("send-keys", "-t", session, "p")
-        time.sleep(1.0)
-        screen = _tmux("capture-pane", "-p", "-t", session).stdout
-        assert "PAUSED" not in screen and int(progress(screen)) > int(first)
+        # Resumed: wait for it rather than for a fixed second (a loaded machine may be slower).
+        deadline = time.time() + 10
+        while time.time() < deadline:
+            time.sleep(0.3)
+            screen = _tmux("capture-pane", "-p", "-t", session).stdout
+            if "PAUSED" not in screen and progress(screen) > first:
+                break
+        assert "PAUSED" not in screen and progress(screen) > first, screen
         # The q key stops the run cleanly after the current step: exit 130, log kept.
         _tmux("send-keys", "-t", session, "q")
         deadline = time.time() + 20
