@@ -148,11 +148,16 @@ def test_estimate_is_cheap_and_consistent_with_the_counts():
     assert (e["modes"], e["crossings"]) == (c.modes, c.crossings)
     assert e["spacing_steps"] == pytest.approx(tr.truth["spacing_steps"], rel=0.005)
     assert e["spacing_steps_u"] > 0 and e["backlash_steps"] is None
+    import statistics
     import time
-    t = time.perf_counter()
+    took_s = []
     for _ in range(20):
+        t = time.perf_counter()
         c.estimate()
-    assert (time.perf_counter() - t) / 20 < 0.02      # a dashboard asks 5 times a second
+        took_s.append(time.perf_counter() - t)
+    # a dashboard asks 5 times a second; the median, so one stall of a loaded machine
+    # (half a second in one call) is not taken for the cost of every call
+    assert statistics.median(took_s) < 0.02
 
 
 # ------------------------------------------- chunking and resuming change nothing
