@@ -220,13 +220,24 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
         s, e = st[j], en[j]
         ln = e - s
         # pass 1: excess, its 3-point median, the maxima
-        r[0] = _excess(x, base, t0, b0, final, s - 1)
-        r[1] = _excess(x, base, t0, b0, final, s)
+        if s - 1 >= t0 and e < t0 + x.size:          # away from the stream's ends
+            for i in range(ln + 2):
+                q = s - 1 + i
+                r[i] = x[q - t0] - base[q // BLOCK - b0]
+        else:
+            for i in range(ln + 2):
+                r[i] = _excess(x, base, t0, b0, final, s - 1 + i)
         hraw = -np.inf
         hmed = -np.inf
         peak = s
+        nd = need[j]
+        # a valley needs a dip below half the peak so far (itself at least nd) and,
+        # after it, a rise to at least nd and above twice the lowest point since the
+        # first such dip: without that, no sample can pass the valley test below
+        dipped = False
+        dip_low = np.inf
+        maybe = False
         for i in range(ln):
-            r[i + 2] = _excess(x, base, t0, b0, final, s + i + 1)
             rm, r0, rp = r[i], r[i + 1], r[i + 2]
             m = max(min(rm, r0), min(max(rm, r0), rp))
             med[i] = m
@@ -235,8 +246,16 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
                 peak = s + i
             if m > hmed:
                 hmed = m
-        # pass 2 (long runs): the highest value to the right of each sample
-        if long_[j]:
+            if dipped:
+                dip_low = min(dip_low, m)
+                if m >= nd and m > 2.0 * dip_low:
+                    maybe = True
+            elif m < 0.5 * hmed and hmed >= nd:
+                dipped = True
+                dip_low = m
+        check = long_[j] and maybe
+        # pass 2 (runs that may hold a valley): the highest value to the right of each sample
+        if check:
             top = -np.inf
             for i in range(ln - 1, -1, -1):
                 top = max(top, med[i])
@@ -250,8 +269,6 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
         pmax = -np.inf
         left = -np.inf
         low_i = -1
-        check = long_[j]
-        nd = need[j]
         for i in range(ln):
             m = med[i]
             if check:
