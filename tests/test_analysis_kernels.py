@@ -62,3 +62,30 @@ def test_hysteresis_runs_against_a_plain_loop():
                                        False, noise, -1, False, st, en, eb, np.empty(n // 8))
     assert list(zip(st[:k].tolist(), en[:k].tolist())) == runs
     assert (1000, 1040) in runs or any(s <= 1000 and e >= 1040 for s, e in runs)
+
+
+def _measure(x, long_=True, need=5.0):
+    n = x.size
+    st, en = np.array([1], np.int64), np.array([n - 1], np.int64)
+    out_f, out_i = np.empty((1, 7)), np.empty((1, 2), np.int64)
+    cuts = np.empty(n, np.int64)
+    base = np.zeros(n // 8 + 1)
+    k = kern.measure_runs(x, np.arange(n, dtype=float), base, 0, 0, True, st, en,
+                          np.zeros(1, bool), np.zeros(1, bool), np.array([long_]), np.array([need]),
+                          out_f, out_i, cuts)
+    return k, cuts[:k], out_f[0], out_i[0]
+
+
+def test_two_blips_in_one_run_are_cut_at_the_valley_and_one_is_not():
+    # Two Gaussian peaks (heights 40 and 30) over a floor of 6 that never drops to the
+    # re-arm level: the cut belongs at the lowest point between them (numpy argmin).
+    i = np.arange(400, dtype=float)
+    two = 6.0 + 40 * np.exp(-0.5 * ((i - 120) / 12) ** 2) + 30 * np.exp(-0.5 * ((i - 280) / 12) ** 2)
+    k, cuts, _, _ = _measure(two)
+    assert k == 1 and cuts[0] == 120 + int(np.argmin(two[120:280]))
+    one = 6.0 + 40 * np.exp(-0.5 * ((i - 200) / 30) ** 2)
+    k, _, f, pk = _measure(one)
+    assert k == 0
+    # centre of a symmetric peak: its middle; peak index: the maximum (numpy argmax)
+    assert f[0] == pytest.approx(200.0, abs=1e-9) and pk[0] == int(np.argmax(one))
+    assert _measure(two, long_=False)[0] == 0           # only runs flagged long are searched
