@@ -13,8 +13,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-BLOCK = 8            # samples per baseline block (counter.BLOCK)
-NOISE_STRIDE = 4     # every 4th sample feeds the noise level (counter.NOISE_STRIDE)
+from analysis.counter_settings import BLOCK, NOISE_STRIDE
 
 
 @njit(cache=True, nogil=True)

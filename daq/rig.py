@@ -106,7 +106,7 @@ def default_rig_path() -> Path:
 def _schema_for(section: str, data: dict[str, Any]) -> dict[str, Any]:
     schema = dict(CORE_SCHEMA[section])
     if section == "counter":
-        from analysis.counter import SETTINGS
+        from analysis.counter_settings import SETTINGS
         schema.update(SETTINGS)
     elif section == "sim":
         from sims.scenarios import SIM_SETTINGS
@@ -198,7 +198,7 @@ def _validate_values(source: str, s: dict[str, dict[str, Any]]) -> None:
     if st["deg_per_step"] is not None and st["deg_per_step"] == 0:
         raise RigError(source, "[stage] deg_per_step", "must not be 0")
     # Per-package checks (e.g. counter thresholds) where a package offers them.
-    from analysis.counter import validate_settings
+    from analysis.counter_settings import validate_settings
     for key, msg in validate_settings(s["counter"]):
         raise RigError(source, f"[counter] {key}", msg)
     from sims.scenarios import validate_sim_settings
