@@ -259,7 +259,7 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
             for i in range(ln - 1, -1, -1):
                 top = max(top, med[i])
                 right[i] = top
-        # pass 3: valleys, and the weights above half height
+        # pass 3: valleys, and the weights of the samples above half height
         half = 0.5 * hmed
         ref = p[s - t0]
         sw = 0.0
@@ -268,7 +268,16 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
         pmax = -np.inf
         left = -np.inf
         low_i = -1
-        for i in range(ln):
+        i_lo, i_hi = 0, ln
+        if not check:
+            # only samples at or above half height weigh in (the rest add exactly zero):
+            # without a valley search, pass 3 needs only the stretch between the first
+            # and the last of them, a blip's core rather than its long tails
+            while i_lo < ln and med[i_lo] < half:
+                i_lo += 1
+            while i_hi > i_lo and med[i_hi - 1] < half:
+                i_hi -= 1
+        for i in range(i_lo, i_hi):
             m = med[i]
             if check:
                 left = max(left, m)
