@@ -63,6 +63,38 @@ class SignalStop:
         return False
 
 
+class _InterruptsRaise:
+    """SIGINT and SIGTERM raise KeyboardInterrupt inside the block (handlers restored after)."""
+
+    def __enter__(self):
+        def handler(signum, frame):
+            raise KeyboardInterrupt
+        self._old = {s: signal.signal(s, handler) for s in EXIT_FOR_SIGNAL}
+        return self
+
+    def __exit__(self, *exc):
+        for s, h in self._old.items():
+            signal.signal(s, h)
+        return False
+
+
+class _InterruptsHeld(_InterruptsRaise):
+    """SIGINT and SIGTERM are noted and ignored inside the block (writing the log's end)."""
+
+    def __enter__(self):
+        self._old = {s: signal.signal(s, lambda signum, frame: None) for s in EXIT_FOR_SIGNAL}
+        return self
+
+
+def _quick_summary(log, sections, status, counter) -> dict:
+    """The counter's own figures, for when the offline summary was interrupted."""
+    from daq.cmd_replay import summarise
+    try:
+        return summarise(log, sections, status, counter, refine=False)
+    except Exception:  # noqa: BLE001 - the counter was cut off mid-way: keep what is certain
+        return {"status": status, "samples": log.n_samples, "log": str(log.path)}
+
+
 def _calibration_view(sections):
     """callable(spacing_steps, u) -> dict for the dashboard, or None when uncalibrated."""
     try:
@@ -165,15 +197,26 @@ def run(args) -> int:
     except Exception as exc:  # noqa: BLE001 - a bug or an unexpected I/O error: keep the log honest
         status, reason, code = "faulted", f"unexpected error: {exc.__class__.__name__}: {exc}", 1
     finally:
-        _safe_stop(stage, detector)
+        with _InterruptsHeld():          # stopping the motion is never cut short
+            _safe_stop(stage, detector)
 
     state.status = status
     if log is None or engine is None:
         return fail(reason or "interrupted before the run started", code or 1)
-    engine.finish_counting()
-    summary = build_summary(log, rig.sections, status, counter=counter, bench=bench, reason=reason)
-    log.finish(status, summary, reason)
-    log.close()
+    # The offline summary can take a few seconds; an interrupt during it (a second
+    # Ctrl-C, a SIGTERM) skips it, keeps the counter's own figures and still closes
+    # the log properly, and the closing itself is never interrupted.
+    try:
+        with _InterruptsRaise():
+            engine.finish_counting()
+            summary = build_summary(log, rig.sections, status, counter=counter, bench=bench, reason=reason)
+    except KeyboardInterrupt:
+        reason = (f"{reason}; " if reason else "") + "offline summary skipped (interrupted)"
+        code = code or 130
+        summary = _quick_summary(log, rig.sections, status, counter)
+    with _InterruptsHeld():
+        log.finish(status, summary, reason)
+        log.close()
     if args.json:
         # The mode map is in the log (and `modetick modes`); keep stdout to the results.
         print(json.dumps({k: v for k, v in summary.items() if k != "mode_map"}))

@@ -133,19 +133,21 @@ class LineLink:
         """One reply line (terminator and surrounding blanks removed)."""
         self._check_alive()
         deadline = time.monotonic() + (self.timeout_s if timeout_s is None else timeout_s)
-        while True:
+        looked = False       # read at least once: a thread held up past the deadline
+        while True:          # must still see a reply that is already waiting
             line = self._take_line()
             if line is not None:
                 if "\ufffd" in line or not line.isprintable():
                     raise TransientDeviceError(f"{self.where()}: sent {sent!r}, got garbled reply {line!r}")
                 return line
-            if time.monotonic() >= deadline:
+            if looked and time.monotonic() >= deadline:
                 break
             try:
                 chunk = self._ser.read(max(1, self._ser.in_waiting))
             except PORT_GONE as exc:
                 raise self._dead(f"waiting for the reply to {sent!r}", exc) from None
             self._rx += chunk
+            looked = True
         waited = self.timeout_s if timeout_s is None else timeout_s
         if self._rx:
             partial = self._rx.decode("ascii", errors="replace")

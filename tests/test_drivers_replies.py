@@ -66,3 +66,14 @@ def test_parse_steps_whole_numbers_only(text):
     except ValueError:
         return
     assert isinstance(steps, int) and steps == float(text)
+
+
+def test_a_waiting_reply_is_read_even_after_the_deadline():
+    # A thread held up past its deadline (a loaded machine) must still take a reply
+    # that is already in the port's buffer: a zero timeout still reads once.
+    link = LineLink("loop://", baudrate=1_000_000, eol="\r", timeout_s=REPLY_S, label="stage")
+    try:
+        link._ser.write(b"POS 42\r")
+        assert link.read_line("POS?", timeout_s=0.0) == "POS 42"
+    finally:
+        link.close()

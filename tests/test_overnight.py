@@ -8,6 +8,8 @@ import sys
 import time
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parent.parent
 PACE = "sweep.settle_s=0.0015"   # the default rig paced by its own settle time
 
@@ -119,6 +121,28 @@ def test_second_interrupt_aborts_with_a_consistent_log(tmp_path):
     s = RunLog.open(log).read_samples()
     want = [m.target_steps for m in moves(load_rig(None)["sweep"]) if m.record][: len(s)]
     assert s.position_steps.tolist() == want and len(s) >= 1200
+
+
+@pytest.mark.parametrize("gap_s", [0.05, 0.3, 0.8])
+def test_second_interrupt_at_human_pace_still_closes_the_log(tmp_path, gap_s):
+    # A person presses Ctrl-C twice a tenth of a second or more apart: the second one
+    # may land while the motion stops or while the offline summary runs. Either way:
+    # exit 130, no traceback, and a finished-off log (status and summary written).
+    from daq.runlog import RunLog
+    log = tmp_path / "twice.db"
+    proc = _sweep("--log", str(log), "--json", "--set", PACE)
+    _wait_for_samples(log, 1200, proc)
+    proc.send_signal(signal.SIGINT)
+    time.sleep(gap_s)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    back = RunLog.open(log)
+    assert back.meta("status") in ("stopped", "aborted")
+    assert back.meta("ended_utc") and back.summary().get("samples") == back.n_samples
+    con = sqlite3.connect(log)
+    assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
 
 
 def test_resume_refuses_overrides(tmp_path):
