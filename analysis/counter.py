@@ -390,7 +390,9 @@ class StreamCounter:
         """Take one chunk of samples; return the events confirmed so far (in order)."""
         if self._finished:
             raise RuntimeError("StreamCounter.feed() after finish()")
-        p = np.asarray(position_steps, dtype=np.float64).ravel()
+        p = np.asarray(position_steps).ravel()
+        if p.dtype.kind not in "iuf":    # integer or float positions are stored as they come
+            p = p.astype(np.float64)
         x = np.asarray(value, dtype=np.float64).ravel()
         d = np.asarray(direction).ravel()
         if not (p.size == x.size == d.size):
@@ -404,9 +406,17 @@ class StreamCounter:
             raise ValueError("feed: value contains NaN or infinity")
         if ok == 0:                      # directions other than +1 / -1
             d = self._directions(d)
-        self._xb.extend(x)
-        self._pb.extend(p)
-        self._db.extend(d)
+        xb, pb, db = self._xb, self._pb, self._db     # stored in place while there is room
+        hi = xb.hi
+        if hi + n <= min(xb.arr.size, pb.arr.size, db.arr.size) and pb.hi == hi == db.hi:
+            xb.arr[hi:hi + n] = x
+            pb.arr[hi:hi + n] = p
+            db.arr[hi:hi + n] = d
+            xb.hi = pb.hi = db.hi = hi + n
+        else:
+            xb.extend(x)
+            pb.extend(p)
+            db.extend(d)
         self._n += n
         self._last_in = int(self._db.arr[self._db.hi - 1])
         now = time.monotonic()
@@ -831,7 +841,8 @@ class StreamCounter:
         Pf = np.array([np.nan if P[f] is None else P[f] for f in ck.PF_FIELDS], np.float64)
         Pi = np.array([0 if P[f] is None else int(P[f]) for f in ck.PI_FIELDS], np.int64)
         m = c["pos"].size - i0
-        out_i, out_f = np.empty((m, 6), np.int64), np.empty((m, 4))
+        # column-major, so each column handed to _emit is contiguous already
+        out_i, out_f = np.empty((m, 6), np.int64, order="F"), np.empty((m, 4), order="F")
         gap_v, gap_n = np.empty(m), np.empty(m, np.int64)
         i, n_out, n_gap = ck.merge_and_number(
             c["pos"], c["area"], c["height"], c["peak"], c["start"], c["end"], c["partial"],

@@ -50,11 +50,9 @@ def despiked_block_means(xs, out):
     for b in range(nb):
         i0 = b * BLOCK
         i1 = min(i0 + BLOCK, ns)
-        s = 0.0
-        for i in range(i0, i1):
-            lo = min(xs[i], xs[i + 2])
-            v = max(xs[i + 1], lo)
-            s = v if i == i0 else s + v
+        s = max(xs[i0 + 1], min(xs[i0], xs[i0 + 2]))
+        for i in range(i0 + 1, i1):
+            s += max(xs[i + 1], min(xs[i], xs[i + 2]))
         out[b] = s / (i1 - i0)
 
 
@@ -327,27 +325,20 @@ def _sliding(a, w, take_max, out):
         pad[i] = a[min(max(i - h, 0), n - 1)]
     pre = np.empty(L)
     suf = np.empty(L)
-    for i in range(L):
-        v = pad[i]
-        if i % w == 0:
-            pre[i] = v
-        elif take_max:
-            pre[i] = max(pre[i - 1], v)
-        else:
-            pre[i] = min(pre[i - 1], v)
-    for i in range(L - 1, -1, -1):
-        v = pad[i]
-        if i == L - 1 or (i + 1) % w == 0:
-            suf[i] = v
-        elif take_max:
-            suf[i] = max(suf[i + 1], v)
-        else:
-            suf[i] = min(suf[i + 1], v)
+    for b0 in range(0, L, w):             # block by block: no division per value
+        b1 = min(b0 + w, L)
+        acc = pad[b0]
+        pre[b0] = acc
+        for i in range(b0 + 1, b1):
+            acc = max(acc, pad[i]) if take_max else min(acc, pad[i])
+            pre[i] = acc
+        acc = pad[b1 - 1]
+        suf[b1 - 1] = acc
+        for i in range(b1 - 2, b0 - 1, -1):
+            acc = max(acc, pad[i]) if take_max else min(acc, pad[i])
+            suf[i] = acc
     for i in range(n):
-        if take_max:
-            out[i] = max(suf[i], pre[i + w - 1])
-        else:
-            out[i] = min(suf[i], pre[i + w - 1])
+        out[i] = max(suf[i], pre[i + w - 1]) if take_max else min(suf[i], pre[i + w - 1])
 
 
 @njit(cache=True, nogil=True)

@@ -32,7 +32,9 @@ SAFETY = ("Laser safety: grating-tuned diode lasers are often Class 3B or 4 and 
           "unless a rig file explicitly allows it within set limits.")
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The whole command line, or (``only``) just the one command about to run: each
+    command module imports what it needs, so a command loads nothing of the others."""
     parser = argparse.ArgumentParser(
         prog="modetick",
         description="Sweep a grating-tuned diode laser, count the chip's longitudinal modes live, "
@@ -41,6 +43,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"modetick {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMANDS:
+        if only is not None and name != only:
+            continue
         try:
             mod = importlib.import_module(f"daq.cmd_{name}")
         except ModuleNotFoundError as exc:
@@ -54,7 +58,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
+    first = next((a for a in argv if not a.startswith("-")), None)
+    parser = build_parser(first if first in COMMANDS else None)
     args = parser.parse_args(argv)
     if not getattr(args, "_run", None):
         parser.print_help(sys.stderr)

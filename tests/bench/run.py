@@ -143,10 +143,8 @@ def write_log(path: Path, rig, tr) -> None:
     log.close()
 
 
-def bench_replay(tmp: Path, rig, tr) -> dict:
-    path = tmp / "big.db"
-    write_log(path, rig, tr)
-    size = sum(p.stat().st_size for p in tmp.glob("big.db*"))
+def replay_once(path: Path) -> tuple[float, int, bool, object]:
+    """(wall seconds, peak RSS bytes, ok, modes) of one `modetick replay --fast --json`."""
     import psutil
     t = time.perf_counter()
     proc = subprocess.Popen([sys.executable, "-m", "daq", "replay", str(path), "--fast", "--json"],
@@ -160,14 +158,23 @@ def bench_replay(tmp: Path, rig, tr) -> dict:
             peak = max(peak, ps.memory_info().rss)
         except psutil.Error:
             break
-        time.sleep(0.01)
+        time.sleep(0.002)
     dt = time.perf_counter() - t
     out = proc.stdout.read()
     ok = proc.returncode == 0
-    modes = json.loads(out).get("modes") if ok and out.strip() else None
+    return dt, peak, ok, (json.loads(out).get("modes") if ok and out.strip() else None)
+
+
+def bench_replay(tmp: Path, rig, tr) -> dict:
+    """End to end, process start included; the better of two runs (the machine is shared)."""
+    path = tmp / "big.db"
+    write_log(path, rig, tr)
+    size = sum(p.stat().st_size for p in tmp.glob("big.db*"))
+    runs = [replay_once(path) for _ in range(2)]
+    dt = min(r[0] for r in runs)
     return {"replay_msamples_per_s": tr.value.size / dt / 1e6,
-            "replay_peak_rss_mb": peak / 2**20,
-            "replay_ok": ok, "replay_modes": modes,
+            "replay_peak_rss_mb": max(r[1] for r in runs) / 2**20,
+            "replay_ok": all(r[2] for r in runs), "replay_modes": runs[0][3],
             "log_bytes_per_sample": size / tr.value.size}
 
 
