@@ -32,6 +32,8 @@ STALL_READS = 500     # identical readings in a row before the detector is calle
 MIN_FREE_BYTES = 50_000_000
 POSITION_TOLERANCE_STEPS = 1
 SCAN_POLL_S = 0.05   # how often a scanning stage is asked where it is
+SCAN_GAP_STEPS = 10  # a scan jump over more unread steps than this (and than 4x the usual
+                     # jump) is logged as a gap: the reading loop was held up
 
 
 @dataclass
@@ -259,6 +261,7 @@ class Engine:
             stage.start_scan(end, speed)
             t_q, p_q, moving = clock(), stage.position_steps(), True
             acc_pos, acc = None, []
+            usual, jumps, t_read = 1.0, 0, clock()
             while True:
                 self._between_steps(can_pause=False)
                 r = read()
@@ -278,7 +281,14 @@ class Engine:
                 if pos != acc_pos and acc:
                     self._take(acc_pos, d, p, _mean_reading(acc))
                     acc = []
-                acc_pos = pos
+                    jump = abs(pos - acc_pos)
+                    if jumps >= 8 and jump > max(SCAN_GAP_STEPS, 4 * usual):
+                        self.note("warning", f"scan gap: steps {acc_pos + d}..{pos - d} not read "
+                                             f"(the reading loop was held up {now - t_read:.2f} s; "
+                                             "slow the scan or lighten the computer's load)", pos)
+                    else:
+                        usual, jumps = 0.9 * usual + 0.1 * jump, jumps + 1
+                acc_pos, t_read = pos, now
                 acc.append(r)
                 if not moving:
                     break

@@ -1,4 +1,7 @@
-"""Engine watchdogs on the simulated rig: full disk, a stage that does not get there, a stuck detector."""
+"""Engine watchdogs on the simulated rig: full disk, a stage that does not get there, a stuck detector,
+a scan held up."""
+import re
+
 import pytest
 
 from analysis.counter import StreamCounter
@@ -80,3 +83,38 @@ def test_detector_returning_one_value_is_warned_about(tmp_path):
     assert eng.run() == "finished"
     warnings = [e for e in log.events("warning") if "times in a row" in (e["detail"] or "")]
     assert len(warnings) == 1
+
+
+class StallingDetector:
+    """The simulated detector, with the reading loop held up once (a loaded computer)."""
+
+    def __init__(self, inner, after_reads: int, stall_s: float):
+        self.inner, self.after, self.stall_s, self.reads = inner, after_reads, stall_s, 0
+        self.name = inner.name
+
+    def __getattr__(self, attr):
+        return getattr(self.inner, attr)
+
+    def read(self):
+        self.reads += 1
+        if self.reads == self.after:
+            import time
+            time.sleep(self.stall_s)
+        return self.inner.read()
+
+
+def test_a_held_up_scan_logs_the_gap_it_leaves(tmp_path):
+    # At 1000 steps/s the stage moves on while nothing is read: a 0.3 s hold-up leaves
+    # about 300 steps unread. The run goes on, and the log says where and why.
+    rig = load_rig(None, ['sweep.mode="scan"', "sweep.speed_steps_per_s=1000", "sweep.passes=1"])
+    s, d, _ = open_devices(rig.sections)
+    # the simulated meter answers ~10^5 times a second: the hold-up comes mid-pass
+    eng, log = _engine(tmp_path, rig, stage=s, detector=StallingDetector(d, 100_000, 0.3))
+    eng.run()
+    gaps = [e for e in log.events("warning") if "scan gap" in (e["detail"] or "")]
+    held = [float(re.search(r"held up ([0-9.]+) s", e["detail"]).group(1)) for e in gaps]
+    pos = log.read_samples().position_steps
+    widest = int(max(abs(pos[1:] - pos[:-1])))
+    # (a loaded machine may add gaps of its own; this one must be among them)
+    assert widest > 100 and max(held) >= 0.29, [e["detail"] for e in gaps]
+    assert log.meta("status") != "faulted" and len(pos) > 2000
