@@ -40,8 +40,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import asdict, dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -72,15 +71,15 @@ MAX_SPAN = 0.65      # a crossing never spans more than this many spacings
 KAPPA = 1.53
 
 
-@dataclass(slots=True)
-class Event:
+class Event(NamedTuple):
     """A counted crossing of a mode ("blip") or a change of direction ("reversal").
 
     ``index`` is the sample index in the whole stream (the blip's peak);
     ``position_steps`` the blip centre (intensity-weighted, sub-step) or the
     reversal point; ``mode`` the mode index (for a reversal: the last mode
     crossed); ``height`` above baseline in detector units; ``width_steps`` the
-    Gaussian-equivalent FWHM from the blip's second moment.
+    Gaussian-equivalent FWHM from the blip's second moment. A tuple: a night
+    has hundreds of thousands of them, and tuples are the cheapest to make.
     """
 
     kind: str
@@ -92,7 +91,7 @@ class Event:
     width_steps: float
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        return self._asdict()
 
 
 # Candidate fields, in the order of a candidate tuple / array columns.
@@ -971,7 +970,7 @@ class StreamCounter:
         cl = cens.tolist()
         hl = hs.tolist()
         wl = ws.tolist()
-        self._out.extend(map(Event, ["blip"] * n, peaks.tolist(), cl, [int(d)] * n, kl, hl, wl))
+        self._out.extend(map(Event._make, zip(["blip"] * n, peaks.tolist(), cl, [int(d)] * n, kl, hl, wl)))
         strong = ~weak
         dd = np.full(n, d)
         self._table.add(ks, dd, cens, hs, ws, strong)

@@ -47,13 +47,20 @@ def despiked_block_means(xs, out):
     """
     ns = xs.size - 2
     nb = out.size
-    for b in range(nb):
-        i0 = b * BLOCK
-        i1 = min(i0 + BLOCK, ns)
-        s = max(xs[i0 + 1], min(xs[i0], xs[i0 + 2]))
-        for i in range(i0 + 1, i1):
-            s += max(xs[i + 1], min(xs[i], xs[i + 2]))
-        out[b] = s / (i1 - i0)
+    t = np.empty(ns)
+    for i in range(ns):                   # no branches: vector code
+        t[i] = max(xs[i + 1], min(xs[i], xs[i + 2]))
+    full = ns // BLOCK
+    for b in range(full):                 # spelt out, added in order (BLOCK = 8)
+        j = b * BLOCK
+        out[b] = (((((((t[j] + t[j + 1]) + t[j + 2]) + t[j + 3]) + t[j + 4]) + t[j + 5])
+                   + t[j + 6]) + t[j + 7]) / BLOCK
+    if full < nb:
+        j = full * BLOCK
+        s = t[j]
+        for i in range(j + 1, ns):
+            s += t[i]
+        out[full] = s / (ns - j)
 
 
 # the noise state carried between batches (a float array, see scan_batch)
@@ -118,25 +125,36 @@ def scan_batch(x, a, means, base, lo_sigma, hi_sigma, min_height, clip_sigma, gr
             first = False
         g_sum += s
         g_max = max(g_max, means[b] - bl)
-        # hysteresis over the block's samples
+        # hysteresis over the block's samples; a block wholly below the re-arm level
+        # outside a run, or wholly above it inside one, needs no look sample by sample
         lo_t = bl + lo_sigma * sigma
         hi_t = bl + max(hi_sigma * sigma, min_height)
-        for i in range(i0, i1):
-            v = x[i]
-            if v > lo_t:
-                if run < 0:
-                    run = a + i
+        b_hi = x[i0]
+        b_lo = x[i0]
+        for i in range(i0 + 1, i1):
+            b_hi = max(b_hi, x[i])
+            b_lo = min(b_lo, x[i])
+        if run < 0 and not b_hi > lo_t:
+            pass
+        elif run >= 0 and b_lo > lo_t:
+            trig = trig or b_hi > hi_t
+        else:
+            for i in range(i0, i1):
+                v = x[i]
+                if v > lo_t:
+                    if run < 0:
+                        run = a + i
+                        trig = False
+                    if v > hi_t:
+                        trig = True
+                elif run >= 0:
+                    if trig:
+                        starts[k] = run
+                        ends[k] = a + i
+                        end_blocks[k] = b
+                        k += 1
+                    run = -1
                     trig = False
-                if v > hi_t:
-                    trig = True
-            elif run >= 0:
-                if trig:
-                    starts[k] = run
-                    ends[k] = a + i
-                    end_blocks[k] = b
-                    k += 1
-                run = -1
-                trig = False
         # the end of a noise group: a new sigma for the blocks after it
         if (b_first + b + 1) % group_blocks == 0 or (final and b == nb - 1):
             if has_ema == 0.0:

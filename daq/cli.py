@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import signal
 import sys
 
 from daq import __version__
@@ -58,6 +59,7 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    called_as_program = argv is None
     argv = sys.argv[1:] if argv is None else list(argv)
     first = next((a for a in argv if not a.startswith("-")), None)
     parser = build_parser(first if first in COMMANDS else None)
@@ -66,9 +68,17 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help(sys.stderr)
         return 2
     try:
-        return int(args._run(args) or 0)
+        code = int(args._run(args) or 0)
     except BrokenPipeError:
-        return 1
+        code = 1
+    if called_as_program:
+        # The work is done (logs closed, results out). Python restores the default
+        # SIGINT action early in its shutdown, which can take a moment after numba;
+        # an interrupt then would kill the process with a different exit code. An
+        # ignored signal is left ignored, so the exit code stays the command's.
+        for s in (signal.SIGINT, signal.SIGTERM):
+            signal.signal(s, signal.SIG_IGN)
+    return code
 
 
 if __name__ == "__main__":

@@ -5,7 +5,7 @@ Traces come from tests/tracegen.py, a model of its own (not the project's simula
 from __future__ import annotations
 
 import json
-from dataclasses import astuple, replace
+from dataclasses import replace
 from functools import lru_cache
 
 import numpy as np
@@ -181,7 +181,7 @@ def _trace(which: int):
 def test_results_do_not_depend_on_chunking_or_on_resuming(which, sizes, resume_after):
     tr, (ref_counter, ref_events) = _trace(which)
     c, events = count(tr.position, tr.direction, tr.value, chunks=sizes, resume_after=resume_after)
-    assert [astuple(e) for e in events] == [astuple(e) for e in ref_events]
+    assert [tuple(e) for e in events] == [tuple(e) for e in ref_events]
     assert c.estimate() == ref_counter.estimate()
     assert (c.modes, c.crossings) == (ref_counter.modes, ref_counter.crossings)
 
