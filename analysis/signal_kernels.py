@@ -1,12 +1,12 @@
 """Per-sample loops of the counter's signal stage, compiled with numba.
 
-Each of these replaces several whole-array numpy passes (and their
-temporaries) by one pass over the samples; they compute exactly what the
-numpy expressions in their docstrings compute, operation for operation, so
-the results are bit-identical and never depend on how the stream was cut.
-numba compiles them on first use and caches the machine code beside this
-file (``__pycache__``), so later processes load them in a fraction of a
-second. Only the loops live here; every decision stays in counter.py.
+Each replaces several whole-array numpy passes (and their temporaries) by
+one or a few passes over the samples. Their order of operations (which
+values are added in which order) is fixed by the data alone, so results never
+depend on how the stream was cut. numba compiles them on first use and caches
+the machine code beside this file (``__pycache__``), so later processes load
+them in a fraction of a second. Only the loops live here; every decision
+stays in counter.py.
 """
 from __future__ import annotations
 
