@@ -15,6 +15,9 @@ from numba import njit
 
 from analysis.counter_settings import BLOCK, NOISE_STRIDE
 
+if BLOCK != 8:                            # despiked_block_means spells the 8 terms out
+    raise ImportError(f"signal_kernels is written for 8-sample blocks, not {BLOCK}")
+
 
 @njit(cache=True, nogil=True)
 def check_chunk(d, x):
