@@ -1,6 +1,6 @@
 """The streaming mode counter: samples in, counted chip modes out.
 
-Signal stage (per batch of up to 65536 samples; its per-sample loops are
+Signal stage (per batch of up to 262144 samples; its per-sample loops are
 compiled, see signal_kernels.py):
   * baseline: a grey opening (sliding minimum, then maximum) of 8-sample block
     means over ``baseline_window`` samples, single-sample dropouts filled in
@@ -394,6 +394,8 @@ class StreamCounter:
             p = p.astype(np.float64)
         x = np.asarray(value, dtype=np.float64).ravel()
         d = np.asarray(direction).ravel()
+        if d.dtype.kind not in "biuf" or not d.dtype.isnative or d.dtype == np.float16:
+            d = d.astype(np.float64)     # the compiled check takes native numbers only
         if not (p.size == x.size == d.size):
             raise ValueError(f"feed: position, direction and value differ in length "
                              f"({p.size}, {d.size}, {x.size})")
@@ -813,13 +815,6 @@ class StreamCounter:
         """Low, or clearly narrower than the typical blip: what a kick's brief look is."""
         return bool(low or (self._wtyp and width < GLIMPSE_WIDTH * self._wtyp))
 
-    def _weak(self, width, partial_all):
-        """Partly crossed or much too narrow to be a mode on their own (glimpses, cut tails)."""
-        weak = np.asarray(partial_all, bool).copy()
-        if self._wtyp:
-            weak |= np.asarray(width) < WEAK_WIDTH * self._wtyp
-        return weak
-
     def _run_cands(self, c: dict) -> None:
         n = c["pos"].size
         i = 0
@@ -875,9 +870,9 @@ class StreamCounter:
                 "repeat": bool(not fresh and n == 0), "offlat": False}
 
     def _one(self, c: dict, i: int) -> None:
-        """One candidate, in Python: right after a reversal, at the start, and in small batches.
-
-        Does exactly what crossing_kernels.merge_and_number does for many candidates at once.
+        """One candidate, in Python: at the start, right after a reversal or a change of
+        direction. The reference for crossing_kernels.merge_and_number, which does the
+        same for the rest of a run (a test checks the two give the same events).
         """
         P, S, d = self._P, self._S, int(c["d"][i])
         pos = float(c["pos"][i])
@@ -1007,14 +1002,6 @@ class StreamCounter:
         self._lastrev = (int(idx), float(pos), int(newdir))
         if self._b is None and self._L is not None and self._S:
             self._phase = "align"
-
-    @staticmethod
-    def _flat(run: list) -> list[tuple]:
-        """(k, centre, height, direction, reliable) for every crossing of a run."""
-        out = []
-        for ks, cs, hs, d, rel in run:
-            out.extend((k, c, h, d, r) for k, c, h, r in zip(ks, cs, hs, rel))
-        return out
 
     @staticmethod
     def _run_arrays(run: list):

@@ -196,14 +196,6 @@ def _excess(x, base, t0, b0, final, i):
     return x[i - t0] - base[i // BLOCK - b0]
 
 
-@njit(cache=True, nogil=True, inline="always")
-def _median3(x, base, t0, b0, final, i):
-    rm = _excess(x, base, t0, b0, final, i - 1)
-    r0 = _excess(x, base, t0, b0, final, i)
-    rp = _excess(x, base, t0, b0, final, i + 1)
-    return max(min(rm, r0), min(max(rm, r0), rp))
-
-
 @njit(cache=True, nogil=True)
 def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, out_f, out_i, cuts):
     """Centre, area, height and extent of each candidate run [st, en) (stream indices),

@@ -79,7 +79,7 @@ class _InterruptsRaise:
 
 
 class _InterruptsHeld(_InterruptsRaise):
-    """SIGINT and SIGTERM are noted and ignored inside the block (writing the log's end)."""
+    """SIGINT and SIGTERM are ignored inside the block (stopping motion, writing the log's end)."""
 
     def __enter__(self):
         self._old = {s: signal.signal(s, lambda signum, frame: None) for s in EXIT_FOR_SIGNAL}
@@ -213,7 +213,8 @@ def run(args) -> int:
     except KeyboardInterrupt:
         reason = (f"{reason}; " if reason else "") + "offline summary skipped (interrupted)"
         code = code or 130
-        summary = _quick_summary(log, rig.sections, status, counter)
+        with _InterruptsHeld():
+            summary = _quick_summary(log, rig.sections, status, counter)
     with _InterruptsHeld():
         log.finish(status, summary, reason)
         log.close()

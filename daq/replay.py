@@ -69,7 +69,7 @@ def iter_chunks(log: RunLog, with_time: bool = False, with_all: bool = False,
             if with_all:
                 c.spread = _unpack_float(row[7], n)
                 c.aux = {k: np.asarray(v, dtype=np.float64) for k, v in json.loads(row[8]).items()} if row[8] else None
-        except (zlib.error, ValueError) as exc:
+        except (zlib.error, ValueError, IndexError) as exc:
             raise LogError(f"log {log.path}: damaged sample block ({exc})") from None
         if n <= max_samples:
             yield c
@@ -81,8 +81,16 @@ def iter_chunks(log: RunLog, with_time: bool = False, with_all: bool = False,
                         None if c.aux is None else {a: v[sl] for a, v in c.aux.items()})
 
 
-READ_AHEAD_SAMPLES = 1 << 20   # decoded samples the reader thread may hold ready (~30 MB)
+READ_AHEAD_SAMPLES = 1 << 20   # decoded samples the reader thread may hold ready (~20 MB)
 _END = object()
+
+
+def _joined(chunks: list[Chunk]) -> Chunk:
+    """Consecutive chunks as one (positions, directions, passes, values only)."""
+    if len(chunks) == 1:
+        return chunks[0]
+    return Chunk(chunks[0].first_i, *(np.concatenate([getattr(c, f) for c in chunks])
+                                      for f in ("position_steps", "direction", "pass_index", "value")))
 
 
 def iter_chunks_ahead(log: RunLog, with_time: bool = False, with_all: bool = False,
@@ -91,39 +99,64 @@ def iter_chunks_ahead(log: RunLog, with_time: bool = False, with_all: bool = Fal
 
     SQLite and zlib release the GIL, so reading and decompressing the next
     blocks overlaps the counting (and the counter's start-up) on another
-    core. The queue is bounded, so memory stays bounded; errors (a damaged
-    block) are raised here, in order, as iter_chunks would raise them.
+    core. At most READ_AHEAD_SAMPLES wait decoded, so memory stays bounded;
+    errors (a damaged block) are raised here, in order, as iter_chunks would
+    raise them. Without times and other columns, consecutive blocks are
+    joined up to ``max_samples`` (a live log's blocks are a few thousand).
     """
-    q: queue.Queue = queue.Queue(maxsize=max(2, READ_AHEAD_SAMPLES // max_samples))
+    q: queue.Queue = queue.Queue()
+    room = threading.Condition()
+    held = [0]                            # decoded samples in the queue
     stop = threading.Event()
+    join = not (with_time or with_all)
 
-    def put(item) -> bool:
-        while not stop.is_set():
-            try:
-                q.put(item, timeout=0.1)
-                return True
-            except queue.Full:
-                pass
-        return False
+    def put(item, n: int) -> bool:
+        with room:
+            while held[0] + n > READ_AHEAD_SAMPLES and held[0] > 0 and not stop.is_set():
+                room.wait(0.1)
+            if stop.is_set():
+                return False
+            held[0] += n
+        q.put((item, n))
+        return True
 
     def read() -> None:
         try:
             own = RunLog.open(log.path)
             try:
-                for c in iter_chunks(own, with_time, with_all, max_samples):
-                    if not put(c):
-                        return
+                pend, n_pend = [], 0
+                try:
+                    for c in iter_chunks(own, with_time, with_all, max_samples):
+                        if join and n_pend + len(c) > max_samples and pend:
+                            if not put(_joined(pend), n_pend):
+                                return
+                            pend, n_pend = [], 0
+                        pend.append(c)
+                        n_pend += len(c)
+                        if not join:
+                            if not put(c, len(c)):
+                                return
+                            pend, n_pend = [], 0
+                except BaseException:
+                    if pend:                  # the good samples before a damaged block first
+                        put(_joined(pend), n_pend)
+                    raise
+                if pend and not put(_joined(pend), n_pend):
+                    return
             finally:
                 own.close()
-            put(_END)
+            put(_END, 0)
         except BaseException as exc:      # handed over to the consumer, raised there
-            put(exc)
+            put(exc, 0)
 
     reader = threading.Thread(target=read, name=f"log reader {log.path.name}", daemon=True)
     reader.start()
     try:
         while True:
-            item = q.get()
+            item, n = q.get()
+            with room:
+                held[0] -= n
+                room.notify()
             if item is _END:
                 return
             if isinstance(item, BaseException):
@@ -131,6 +164,8 @@ def iter_chunks_ahead(log: RunLog, with_time: bool = False, with_all: bool = Fal
             yield item
     finally:
         stop.set()
+        with room:
+            room.notify()
         reader.join(timeout=5)
 
 

@@ -203,10 +203,19 @@ class RunLog:
         if not fmt or fmt[0] != FORMAT:
             conn.close()
             raise LogError(f"log {path}: not a modetick run log (no format marker)")
+        ver = conn.execute("SELECT value FROM meta WHERE key='format_version'").fetchone()
+        if ver and ver[0].isdigit() and int(ver[0]) > FORMAT_VERSION:
+            conn.close()
+            raise LogError(f"log {path}: format {ver[0]} is newer than this modetick reads "
+                           f"({FORMAT_VERSION}); update modetick")
+        log = cls(path, conn)
         if writable:
             conn.execute("PRAGMA journal_mode=WAL")
             conn.execute("PRAGMA synchronous=FULL")
-        return cls(path, conn)
+            # blocks appended from now on are written in this version's format (the
+            # reader takes both, column by column)
+            log.set_meta(format_version=str(FORMAT_VERSION))
+        return log
 
     def close(self) -> None:
         self.conn.close()
@@ -292,7 +301,7 @@ class RunLog:
                        for k, x in (json.loads(aux_json).items() if aux_json else [])}
                 yield Samples(_unpack_delta(t_us) / 1e6, _unpack_delta(pos), _unpack_small(d, "<i1"),
                               _unpack_small(p, "<i2"), _unpack_float(v, n), _unpack_float(s, n), aux)
-            except (zlib.error, ValueError) as exc:
+            except (zlib.error, ValueError, IndexError) as exc:
                 raise LogError(f"log {self.path}: damaged sample block ({exc})") from None
 
     def read_samples(self) -> Samples:

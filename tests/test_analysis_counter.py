@@ -186,6 +186,49 @@ def test_results_do_not_depend_on_chunking_or_on_resuming(which, sizes, resume_a
     assert (c.modes, c.crossings) == (ref_counter.modes, ref_counter.crossings)
 
 
+@pytest.mark.parametrize("which", [0, 1])
+def test_compiled_numbering_gives_the_events_of_the_one_at_a_time_reference(which, monkeypatch):
+    # StreamCounter._one is the readable rule; crossing_kernels.merge_and_number does the
+    # same for the rest of a run. Forcing every candidate through _one must change nothing.
+    tr, (ref_counter, ref_events) = _trace(which)
+
+    def one_at_a_time(self, c):
+        for i in range(c["pos"].size):
+            self._one(c, i)
+    monkeypatch.setattr(StreamCounter, "_run_cands", one_at_a_time)
+    c, events = count(tr.position, tr.direction, tr.value)
+    assert [tuple(e) for e in events] == [tuple(e) for e in ref_events]
+    assert c.estimate() == ref_counter.estimate()
+
+
+def test_a_state_saved_before_the_noise_state_was_one_array_still_resumes():
+    # Older logs hold the noise state as separate fields (_ema, _gcnt, _gneg, _rmax, _gmax);
+    # such a state, with the same values, must continue exactly as the current one does.
+    tr, (ref_counter, ref_events) = _trace(0)
+    cut = 3000                                         # mid noise group: its sums carry over
+    c = StreamCounter()
+    events = c.feed(tr.position[:cut], tr.direction[:cut], tr.value[:cut])
+    c.estimate()                                       # a read-out: the samples are worked through
+    st = json.loads(json.dumps(c.get_state()))
+    assert st["_noise"][4] != 0.0                      # a group's sum is under way
+    nz = st.pop("_noise")
+    has_ema = nz[3] == 1.0
+    st.update(_ema=[nz[1], nz[2]] if has_ema else None, _gcnt=nz[5], _gneg=[[nz[4]]],
+              _gmax=nz[6], _rmax=nz[7])
+    c2 = StreamCounter.from_state(st)
+    events += c2.feed(tr.position[cut:], tr.direction[cut:], tr.value[cut:]) + c2.finish()
+    assert [tuple(e) for e in events] == [tuple(e) for e in ref_events]
+    assert c2.noise_sigma == ref_counter.noise_sigma     # the noise state itself carried over
+
+
+@pytest.mark.parametrize("dtype", [">i2", "<i4", "float16", "float32", object])
+def test_directions_of_any_numeric_type_count_the_same(dtype):
+    # numpy arrays from files (big-endian, half floats) or pandas (object) are taken too
+    tr, (ref_counter, _) = _trace(1)
+    c, _ = count(tr.position, tr.direction.astype(dtype), tr.value)
+    assert (c.modes, c.crossings) == (ref_counter.modes, ref_counter.crossings)
+
+
 def test_state_is_plain_json():
     tr, _ = _trace(0)
     c = StreamCounter()

@@ -166,3 +166,48 @@ def test_bad_input_exits_2_with_one_line(tmp_path, narrow, args, words):
     assert res.returncode == 2
     lines = res.stderr.strip().splitlines()
     assert len(lines) == 1 and words in lines[0] and "Traceback" not in res.stderr
+
+
+def _blocks_log(tmp_path, n_blocks=6, n=500):
+    from daq.rig import load_rig
+    from daq.runlog import RunLog
+    log = RunLog.create(tmp_path / "blocks.db", load_rig(None))
+    for b in range(n_blocks):
+        i = np.arange(b * n, (b + 1) * n)
+        log.append_samples(i * 1e-3, 1000 + i, np.ones(n, int), np.zeros(n, int), np.sin(i * 0.1))
+    log.close()
+    return tmp_path / "blocks.db"
+
+
+def test_read_ahead_gives_the_blocks_in_order_then_the_damage(tmp_path):
+    # The reader thread's chunks are the log's samples in order; a damaged block is
+    # reported (as a LogError naming the log) after every good block before it.
+    import sqlite3
+    from daq.replay import iter_chunks_ahead
+    from daq.runlog import LogError, RunLog
+    path = _blocks_log(tmp_path)
+    got = np.concatenate([c.position_steps for c in iter_chunks_ahead(RunLog.open(path), max_samples=1200)])
+    assert np.array_equal(got, 1000 + np.arange(3000))
+    con = sqlite3.connect(path)
+    con.execute("UPDATE sample_blocks SET value = X'02' WHERE block = 3")
+    con.commit()
+    con.close()
+    seen = []
+    with pytest.raises(LogError, match="damaged sample block"):
+        for c in iter_chunks_ahead(RunLog.open(path)):
+            seen.append(c.position_steps)
+    assert np.array_equal(np.concatenate(seen), 1000 + np.arange(1500))   # blocks 0-2, joined
+
+
+def test_read_ahead_stops_its_thread_when_the_reader_leaves_early(tmp_path):
+    import threading
+    import time
+    from daq.replay import iter_chunks_ahead
+    from daq.runlog import RunLog
+    it = iter_chunks_ahead(RunLog.open(_blocks_log(tmp_path)))
+    next(it)
+    it.close()                                         # as a `break` out of the loop does
+    deadline = time.monotonic() + 5
+    while any(t.name.startswith("log reader") for t in threading.enumerate()):
+        assert time.monotonic() < deadline, "the reader thread is still running"
+        time.sleep(0.01)

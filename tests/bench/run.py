@@ -132,11 +132,13 @@ def bench_engine(tmp: Path) -> dict:
 
 
 def write_log(path: Path, rig, tr) -> None:
+    """The trace as a live run logs it: one block per engine flush (FLUSH_SAMPLES)."""
+    from daq.engine import FLUSH_SAMPLES
     from daq.runlog import RunLog
     log = RunLog.create(path, rig)
     t_s = np.arange(tr.value.size) * 1e-4
-    for a in range(0, tr.value.size, 65536):
-        s = slice(a, a + 65536)
+    for a in range(0, tr.value.size, FLUSH_SAMPLES):
+        s = slice(a, a + FLUSH_SAMPLES)
         log.append_samples(t_s[s], tr.position_steps[s], tr.direction[s], tr.pass_index[s], tr.value[s],
                            commit=False)
     log.finish("finished", {})
