@@ -1066,12 +1066,16 @@ class StreamCounter:
         if np_.size > 4000:                   # many reads per step: thin them evenly
             keep = np.linspace(0, np_.size - 1, 4000).astype(np.int64)
             np_, nv = np_[keep], nv[keep]
-        q = np_[None, :] + side * grid[:, None]
-        q = np.where(side * (q - rpos) > 0, rpos, q)
-        pred = np.interp(q, op, ov)
-        res = nv[None, :] - pred
-        res -= res.mean(axis=1, keepdims=True)
-        J = np.mean(res * res, axis=1)
+        # misfit per trial backlash, a few rows at a time: the same numbers as one big
+        # array (each row is reduced on its own), without megabytes of fresh temporaries
+        J = np.empty(grid.size)
+        for r0 in range(0, grid.size, 16):
+            g = grid[r0:r0 + 16]
+            q = np_[None, :] + side * g[:, None]
+            q = np.where(side * (q - rpos) > 0, rpos, q)
+            res = nv[None, :] - np.interp(q, op, ov)
+            res -= res.mean(axis=1, keepdims=True)
+            J[r0:r0 + 16] = np.mean(res * res, axis=1)
         i = int(np.argmin(J))
         far = np.abs(grid - grid[i]) > 0.3 * S
         if not far.any() or J[far].min() < 1.5 * J[i]:
