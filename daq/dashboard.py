@@ -12,13 +12,16 @@ import sys
 import threading
 import time
 
-from rich.console import Console, Group
-from rich.live import Live
-from rich.panel import Panel
-from rich.table import Table
-from rich.text import Text
+from typing import TYPE_CHECKING
 
 from daq.engine import LiveState
+
+# rich is imported where a terminal view is drawn: piped or --json runs (replay
+# --fast, overnight runs under a scheduler) start without it.
+if TYPE_CHECKING:
+    from rich.console import Console
+    from rich.panel import Panel
+    from rich.text import Text
 
 # A 3x5 block font for the mode count: each string is one row of a digit.
 _FONT = {
@@ -39,6 +42,7 @@ BLIP_STYLE = "bold orange_red1"
 
 def big_number(n: int | None) -> Text:
     """The count drawn 5 rows tall, each font pixel two cells wide."""
+    from rich.text import Text
     s = "-" if n is None else str(n)
     rows = [" ".join("".join(c * 2 for c in _FONT[ch][r]) for ch in s) for r in range(5)]
     return Text("\n".join(rows), style=COUNT_STYLE)
@@ -102,6 +106,10 @@ def time_left_s(st: LiveState) -> float | None:
 
 
 def render(st: LiveState, width: int = 80) -> Panel:
+    from rich.console import Group
+    from rich.panel import Panel
+    from rich.table import Table
+    from rich.text import Text
     est = st.estimate or {}
     spacing, spacing_u = est.get("spacing_steps"), est.get("spacing_steps_u")
     calib = st.calib(spacing, spacing_u) if (st.calib and spacing) else None
@@ -155,6 +163,8 @@ class TerminalView:
     """rich Live dashboard, refreshed from rich's own thread."""
 
     def __init__(self, state: LiveState, console: Console | None = None, refresh_per_second: float = 4):
+        from rich.console import Console
+        from rich.live import Live
         self.state = state
         self.console = console or Console(stderr=False)
         self.live = Live(console=self.console, refresh_per_second=refresh_per_second,

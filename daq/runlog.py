@@ -134,14 +134,13 @@ def _unpack_float(b: bytes, n: int) -> np.ndarray:
     if b[:1] != _TAG_PLANES:                         # format 1: one shuffled zlib stream
         raw = np.frombuffer(zlib.decompress(b), dtype=np.uint8).reshape(8, n)
         return np.ascontiguousarray(raw.T).view("<f8").reshape(n)
-    sizes = np.frombuffer(b, "<u4", 8, 9)
-    out = np.empty((n, 8), np.uint8)
-    at = 41
-    for j in range(8):
-        part = b[at:at + int(sizes[j])]
-        at += int(sizes[j])
-        out[:, j] = np.frombuffer(zlib.decompress(part) if b[1 + j] == _ZLIB else part, np.uint8)
-    return out.view("<f8").reshape(n)
+    parts, at = [], 41
+    for j, size in enumerate(np.frombuffer(b, "<u4", 8, 9).tolist()):
+        part = b[at:at + size]
+        at += size
+        parts.append(zlib.decompress(part) if b[1 + j] == _ZLIB else part)
+    planes = np.frombuffer(b"".join(parts), np.uint8).reshape(8, n)
+    return np.ascontiguousarray(planes.T).view("<f8").reshape(n)
 
 
 @dataclass
