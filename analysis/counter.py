@@ -46,7 +46,7 @@ import numpy as np
 
 from analysis import crossing_kernels as ck
 from analysis import signal_kernels as kern
-from analysis.counter_settings import BLOCK, GROUP, NOISE_STRIDE, SETTINGS, validate_settings  # noqa: F401
+from analysis.counter_settings import BLOCK, GROUP, NOISE_STRIDE, SETTINGS, validate_settings
 from analysis.modefit import fit_spacing, mechanical_centres
 
 INIT_NOISE = 2048    # samples the first noise level is taken from

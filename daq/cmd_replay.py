@@ -45,36 +45,12 @@ def replay_rig(log: RunLog, overrides: list[str]):
 
 def summarise(log: RunLog, sections: dict, status: str, counter, refine: bool) -> dict:
     """The same keys as ``sweep --json``; the spacing refined offline when ``refine``."""
-    from daq.summary import CALIBRATED_KEYS, CORE_KEYS, json_ready, build_summary
-    if refine:
-        out = build_summary(log, sections, status, counter=counter)
-        out["refined"] = True
-        return out
-    est = counter.estimate()
-    out = {"modes": counter.modes, "crossings": counter.crossings,
-           "spacing_steps": est.get("spacing_steps"), "spacing_steps_u": est.get("spacing_steps_u"),
-           "samples": log.n_samples, "status": status, "log": str(log.path)}
-    cal = _calibrated_view(out["spacing_steps"], out["spacing_steps_u"], sections)
-    if cal:
-        out.update({k: cal.get(k) for k in CALIBRATED_KEYS if k in cal})
-    if est.get("backlash_steps") is not None:
-        out["backlash_steps"] = est["backlash_steps"]
-    out["live_spacing_steps"] = est.get("spacing_steps")
-    out["refined"] = False
-    ordered = {k: out[k] for k in CORE_KEYS + CALIBRATED_KEYS if k in out}
-    ordered.update({k: v for k, v in out.items() if k not in ordered})
-    return json_ready(ordered)
-
-
-def _calibrated_view(spacing, spacing_u, sections) -> dict | None:
-    s, g = sections["stage"], sections["grating"]
-    if spacing is None or None in (s["deg_per_step"], s["angle_at_zero_deg"], g["lines_per_mm"]):
-        return None
-    try:
-        from analysis.physics import live_calibration
-    except ImportError:
-        return None
-    return live_calibration(spacing, spacing_u, sections)
+    from daq.summary import build_summary, live_summary
+    if not refine:
+        return live_summary(log, sections, status, counter)
+    out = build_summary(log, sections, status, counter=counter)
+    out["refined"] = True
+    return out
 
 
 def run(args) -> int:

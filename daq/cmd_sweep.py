@@ -88,9 +88,9 @@ class _InterruptsHeld(_InterruptsRaise):
 
 def _quick_summary(log, sections, status, counter) -> dict:
     """The counter's own figures, for when the offline summary was interrupted."""
-    from daq.cmd_replay import summarise
+    from daq.summary import live_summary
     try:
-        return summarise(log, sections, status, counter, refine=False)
+        return live_summary(log, sections, status, counter)
     except Exception:  # noqa: BLE001 - the counter was cut off mid-way: keep what is certain
         return {"status": status, "samples": log.n_samples, "log": str(log.path)}
 

@@ -24,6 +24,26 @@ def json_ready(x: Any) -> Any:
     return x
 
 
+def live_summary(log: RunLog, sections: dict, status: str, counter) -> dict:
+    """The summary's keys from the counter alone (no offline pass over the log):
+    for logs too big to refine, and when the offline pass was interrupted."""
+    from analysis.physics import live_calibration
+    est = counter.estimate()
+    out = {"modes": counter.modes, "crossings": counter.crossings,
+           "spacing_steps": est.get("spacing_steps"), "spacing_steps_u": est.get("spacing_steps_u"),
+           "samples": log.n_samples, "status": status, "log": str(log.path)}
+    cal = live_calibration(out["spacing_steps"], out["spacing_steps_u"], sections)
+    if cal:
+        out.update({k: cal.get(k) for k in CALIBRATED_KEYS if k in cal})
+    if est.get("backlash_steps") is not None:
+        out["backlash_steps"] = est["backlash_steps"]
+    out["live_spacing_steps"] = est.get("spacing_steps")
+    out["refined"] = False
+    ordered = {k: out[k] for k in CORE_KEYS + CALIBRATED_KEYS if k in out}
+    ordered.update({k: v for k, v in out.items() if k not in ordered})
+    return json_ready(ordered)
+
+
 def analyze_log(log: RunLog, sections: dict) -> dict:
     """Offline analysis of every logged sample (analysis.pipeline)."""
     from analysis.pipeline import analyze_trace
