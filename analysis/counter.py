@@ -176,6 +176,10 @@ def initial_spacing(runs: list[np.ndarray], weights: list[np.ndarray] | None = N
     return s, (span / s if occupied >= 0.7 else 0.0)
 
 
+# direction dtypes the compiled chunk check takes as they are (build_kernels.EXPORTS)
+_CHECKED_DIRECTIONS = (np.dtype(np.int8), np.dtype(np.int64), np.dtype(np.float64))
+
+
 class _Buf:
     """A growable 1-d array: appends in place, drops from the front without copying."""
 
@@ -394,8 +398,8 @@ class StreamCounter:
             p = p.astype(np.float64)
         x = np.asarray(value, dtype=np.float64).ravel()
         d = np.asarray(direction).ravel()
-        if d.dtype.kind not in "biuf" or not d.dtype.isnative or d.dtype == np.float16:
-            d = d.astype(np.float64)     # the compiled check takes native numbers only
+        if d.dtype not in _CHECKED_DIRECTIONS:
+            d = d.astype(np.float64)     # the compiled check is built for these only
         if not (p.size == x.size == d.size):
             raise ValueError(f"feed: position, direction and value differ in length "
                              f"({p.size}, {d.size}, {x.size})")

@@ -14,7 +14,7 @@ operation, as the Python path, so the two may take turns anywhere.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from analysis.compiled import kernel
 
 # the open crossing: float fields
 PF_REF, PF_SW, PF_SWP, PF_LAST, PF_H, PF_PMIN, PF_PMAX, PF_STEPSUM, PF_ANC_CENT = range(9)
@@ -29,7 +29,7 @@ OI_K, OI_PEAK, OI_START, OI_END, OI_PARTS, OI_WEAK = range(6)
 OF_CEN, OF_H, OF_WIDTH, OF_AREA = range(4)
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def close_crossing(Pf, Pi, wtyp, weak_width, glimpse_width):
     """(centre, width, weak) of the open crossing (StreamCounter._finalise_pending)."""
     sw = Pf[PF_SW]
@@ -42,7 +42,7 @@ def close_crossing(Pf, Pi, wtyp, weak_width, glimpse_width):
     return cen, width, weak
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def merge_and_number(pos, area, height, peak, start, end, partial, pmin, pmax, step, d_c, i0,
                      Pf, Pi, S, f, htyp, wtyp, max_span, main_height, off_lattice,
                      weak_width, glimpse_width, out_i, out_f, gap_v, gap_n):
@@ -132,7 +132,7 @@ def merge_and_number(pos, area, height, peak, start, end, partial, pmin, pmax, s
     return i, n_out, n_gap
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def table_add(off, seen, hsum, wsum, strong, cnt, sums, sq, ks, d, cens, hs, ws, reliable):
     """Add crossings to the per-mode sums one at a time, in order (_ModeTable.add1 each)."""
     for j in range(ks.size):
@@ -148,7 +148,7 @@ def table_add(off, seen, hsum, wsum, strong, cnt, sums, sq, ks, d, cens, hs, ws,
             sq[row, i] += cens[j] * cens[j]
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def backlash_pairs(kc, cc, dc, kp, cp, dp, out):
     """d * (centre now - centre last run) for each mode crossed both ways in the two runs.
 

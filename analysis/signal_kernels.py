@@ -3,15 +3,14 @@
 Each replaces several whole-array numpy passes (and their temporaries) by
 one or a few passes over the samples. Their order of operations (which
 values are added in which order) is fixed by the data alone, so results never
-depend on how the stream was cut. numba compiles them on first use and caches
-the machine code beside this file (``__pycache__``), so later processes load
-them in a fraction of a second. Only the loops live here; every decision
-stays in counter.py.
+depend on how the stream was cut. They are compiled ahead of time at install,
+or by numba on first use (analysis/compiled.py says which and why). Only the
+loops live here; every decision stays in counter.py.
 """
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from analysis.compiled import kernel
 
 from analysis.counter_settings import BLOCK, NOISE_STRIDE
 
@@ -19,7 +18,7 @@ if BLOCK != 8:                            # despiked_block_means spells the 8 te
     raise ImportError(f"signal_kernels is written for 8-sample blocks, not {BLOCK}")
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def check_chunk(d, x):
     """-1 if a value is not finite, 0 if a direction is not +1 or -1, else 1.
 
@@ -39,7 +38,7 @@ def check_chunk(d, x):
     return 0 if off else 1
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def despiked_block_means(xs, out):
     """Block means of the samples with single-sample dropouts raised.
 
@@ -71,7 +70,7 @@ def despiked_block_means(xs, out):
  NZ_RUN_MAX) = range(8)
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def scan_batch(x, a, means, base, lo_sigma, hi_sigma, min_height, clip_sigma, group_blocks,
                alpha, kappa, floor, final, noise, open_start, open_trig, starts, ends,
                end_blocks, sigma_at):
@@ -184,7 +183,7 @@ def scan_batch(x, a, means, base, lo_sigma, hi_sigma, min_height, clip_sigma, gr
     return k, run, trig
 
 
-@njit(cache=True, nogil=True, inline="always")
+@kernel(cache=True, nogil=True, inline="always")
 def _excess(x, base, t0, b0, final, i):
     """Sample i (stream index) above the baseline; one past either end of the
     stream reflects about the end sample (or repeats the newest one while more may come)."""
@@ -196,7 +195,7 @@ def _excess(x, base, t0, b0, final, i):
     return x[i - t0] - base[i // BLOCK - b0]
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, out_f, out_i, cuts):
     """Centre, area, height and extent of each candidate run [st, en) (stream indices),
     and where runs holding two blips are to be cut.
@@ -324,7 +323,7 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
     return k
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def _sliding(a, w, take_max, out):
     """Minimum (or maximum) over a centred window of w (odd) values, the ends
     extended with the end values: scipy.ndimage's minimum_filter1d /
@@ -354,7 +353,7 @@ def _sliding(a, w, take_max, out):
         out[i] = max(suf[i], pre[i + w - 1]) if take_max else min(suf[i], pre[i + w - 1])
 
 
-@njit(cache=True, nogil=True)
+@kernel(cache=True, nogil=True)
 def grey_opening(a, w, out):
     """A sliding minimum then a sliding maximum over w values (the ends extended):
     what is left of a signal under its narrow peaks."""

@@ -1,0 +1,138 @@
+"""Which machine code runs the counter's loops.
+
+The loops in signal_kernels.py and crossing_kernels.py are compiled with
+numba. Installing modetick also compiles them ahead of time into the
+extension module ``analysis._kernels_aot`` (analysis/build_kernels.py, run by
+setup.py). When that module is there and was built from the kernel sources
+as they are now, the kernels come from it and numba is never imported: a
+command that counts then starts in a tenth of a second instead of half a
+second or more (numba's import and its first call). Otherwise, or with
+MODETICK_KERNELS=jit in the environment, numba compiles them on first use
+and caches the machine code (``__pycache__``) as before: the same Python
+source, the same results (tests/test_compiled_kernels.py holds the two
+against each other).
+
+Ahead-of-time functions take their arguments' types on trust (a wrong dtype
+would be read as raw memory), so each is wrapped in a check of every argument
+against the signatures it was built for; a mismatch raises TypeError.
+"""
+from __future__ import annotations
+
+import hashlib
+import os
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+KERNEL_SOURCES = ("signal_kernels.py", "crossing_kernels.py", "counter_settings.py")
+ENV_MODE = "MODETICK_KERNELS"   # "jit" forces numba's JIT
+
+
+def source_stamp() -> int:
+    """A 60-bit digest of the kernel sources: an ahead-of-time build is used only for these."""
+    h = hashlib.sha256()
+    for name in KERNEL_SOURCES:
+        h.update((HERE / name).read_bytes())
+    return int(h.hexdigest()[:15], 16)
+
+
+def _load_aot():
+    if os.environ.get(ENV_MODE, "").lower() == "jit":
+        return None
+    try:
+        from analysis import _kernels_aot as mod
+    except ImportError:
+        return None
+    try:
+        if mod.source_stamp() != source_stamp():
+            return None          # built from other sources: a kernel was edited since
+    except AttributeError:
+        return None
+    return mod
+
+
+AOT = _load_aot()
+MODE = "aot" if AOT is not None else "jit"
+
+# --- argument checks for the ahead-of-time functions ------------------------------
+
+_DTYPES = {"float64": np.float64, "int64": np.int64, "int32": np.int32, "int16": np.int16,
+           "int8": np.int8, "uint8": np.uint8, "bool": np.bool_}
+_SCALARS = {"f8": (float, int, np.floating, np.integer), "i8": (int, np.integer),
+            "b1": (bool, np.bool_)}
+
+
+def parse_arg(spec: str):
+    """One argument of a signature as built (build_kernels.EXPORTS): "f8", "i8", "b1"
+    or "<dtype>:<ndim><layout>", layout C or F (contiguous that way) or A (any)."""
+    if spec in _SCALARS:
+        return spec
+    dtype, shape = spec.split(":")
+    return (np.dtype(_DTYPES[dtype]), int(shape[:-1]), shape[-1])
+
+
+def _matches(args: tuple, specs: tuple) -> bool:
+    if len(args) != len(specs):
+        return False
+    for a, s in zip(args, specs):
+        if type(s) is str:
+            if not isinstance(a, _SCALARS[s]) or (s != "b1" and isinstance(a, (bool, np.bool_))):
+                return False
+        elif not (type(a) is np.ndarray and a.dtype == s[0] and a.ndim == s[1]
+                  and (s[2] == "A" or (a.flags.c_contiguous if s[2] == "C" else a.flags.f_contiguous))):
+            return False
+    return True
+
+
+def checked(name: str, variants: list[tuple[tuple, Callable]]) -> Callable:
+    """The ahead-of-time function(s) for one kernel, behind an argument check.
+
+    ``variants``: (argument specs, compiled function) per signature built; the
+    first whose specs the arguments match runs.
+    """
+    if len(variants) == 1:
+        (specs, fn), = variants
+
+        def one(*args):
+            if not _matches(args, specs):
+                raise TypeError(f"{name}: arguments {_describe(args)} do not match {specs}")
+            return fn(*args)
+        one.__name__ = name
+        return one
+
+    def several(*args):
+        for specs, fn in variants:
+            if _matches(args, specs):
+                return fn(*args)
+        raise TypeError(f"{name}: arguments {_describe(args)} match none of "
+                        f"{[s for s, _ in variants]}")
+    several.__name__ = name
+    return several
+
+
+def _describe(args: tuple) -> list[str]:
+    return [f"{a.dtype}:{a.ndim}" if isinstance(a, np.ndarray) else type(a).__name__ for a in args]
+
+
+def kernel(**options):
+    """numba.njit(**options), or the ahead-of-time build of the function of the same name.
+
+    Helpers that only other kernels call are not exported: with the build
+    loaded they stay plain Python functions, never called.
+    """
+    if AOT is None:
+        from numba import njit
+        return njit(**options)
+
+    def pick(fn):
+        from analysis.build_kernels import EXPORTS
+        if fn.__name__ not in EXPORTS:
+            return fn
+        variants = [(tuple(parse_arg(a) for a in specs), getattr(AOT, f"{fn.__name__}__{i}"))
+                    for i, (_, specs) in enumerate(EXPORTS[fn.__name__])]
+        run = checked(fn.__name__, variants)
+        run.py_func = fn            # as numba's functions have it
+        return run
+    return pick
