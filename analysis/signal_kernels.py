@@ -14,10 +14,6 @@ from analysis.compiled import kernel
 
 from analysis.counter_settings import BLOCK, NOISE_STRIDE
 
-if BLOCK != 8:                            # despiked_block_means spells the 8 terms out
-    raise ImportError(f"signal_kernels is written for 8-sample blocks, not {BLOCK}")
-
-
 @kernel(cache=True, nogil=True)
 def check_chunk(d, x):
     """-1 if a value is not finite, 0 if a direction is not +1 or -1, else 1.
@@ -45,23 +41,23 @@ def despiked_block_means(xs, out):
     ``xs`` holds the samples with one neighbour each side; sample i is
     ``max(xs[i+1], min(xs[i], xs[i+2]))`` and each block of BLOCK samples is
     added in order, then divided by BLOCK (a short last block by its length).
-    Writes ``out`` (length ceil((len(xs)-2)/BLOCK)).
+    Writes ``out`` (length ceil((len(xs)-2)/BLOCK)). The despiked samples are
+    added as they are made: a batch-sized temporary cost more than the loop.
     """
     ns = xs.size - 2
     nb = out.size
-    t = np.empty(ns)
-    for i in range(ns):                   # no branches: vector code
-        t[i] = max(xs[i + 1], min(xs[i], xs[i + 2]))
     full = ns // BLOCK
-    for b in range(full):                 # spelt out, added in order (BLOCK = 8)
+    for b in range(full):
         j = b * BLOCK
-        out[b] = (((((((t[j] + t[j + 1]) + t[j + 2]) + t[j + 3]) + t[j + 4]) + t[j + 5])
-                   + t[j + 6]) + t[j + 7]) / BLOCK
+        s = max(xs[j + 1], min(xs[j], xs[j + 2]))
+        for i in range(j + 1, j + BLOCK):
+            s += max(xs[i + 1], min(xs[i], xs[i + 2]))
+        out[b] = s / BLOCK
     if full < nb:
         j = full * BLOCK
-        s = t[j]
+        s = max(xs[j + 1], min(xs[j], xs[j + 2]))
         for i in range(j + 1, ns):
-            s += t[i]
+            s += max(xs[i + 1], min(xs[i], xs[i + 2]))
         out[full] = s / (ns - j)
 
 
