@@ -217,21 +217,12 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
     longest = 0
     for j in range(st.size):
         longest = max(longest, en[j] - st[j])
-    r = np.empty(longest + 2)
     med = np.empty(longest)
     right = np.empty(longest)
     k = 0
     for j in range(st.size):
         s, e = st[j], en[j]
         ln = e - s
-        # pass 1: excess, its 3-point median, the maxima
-        if s - 1 >= t0 and e < t0 + x.size:          # away from the stream's ends
-            for i in range(ln + 2):
-                q = s - 1 + i
-                r[i] = x[q - t0] - base[q // BLOCK - b0]
-        else:
-            for i in range(ln + 2):
-                r[i] = _excess(x, base, t0, b0, final, s - 1 + i)
         hraw = -np.inf
         hmed = -np.inf
         peak = s
@@ -242,8 +233,20 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
         dipped = False
         dip_low = np.inf
         maybe = False
+        # pass 1: the excess (a window of three rolling along), its 3-point median, the maxima
+        inside = s - 1 >= t0 and e < t0 + x.size          # away from the stream's ends
+        if inside:
+            rm = x[s - 1 - t0] - base[(s - 1) // BLOCK - b0]
+            r0 = x[s - t0] - base[s // BLOCK - b0]
+        else:
+            rm = _excess(x, base, t0, b0, final, s - 1)
+            r0 = _excess(x, base, t0, b0, final, s)
         for i in range(ln):
-            rm, r0, rp = r[i], r[i + 1], r[i + 2]
+            q = s + 1 + i
+            if inside:
+                rp = x[q - t0] - base[q // BLOCK - b0]
+            else:
+                rp = _excess(x, base, t0, b0, final, q)
             m = max(min(rm, r0), min(max(rm, r0), rp))
             med[i] = m
             if r0 > hraw:
@@ -258,6 +261,8 @@ def measure_runs(x, p, base, t0, b0, final, st, en, cut_l, cut_r, long_, need, o
             elif m < 0.5 * hmed and hmed >= nd:
                 dipped = True
                 dip_low = m
+            rm = r0
+            r0 = rp
         check = long_[j] and maybe
         # pass 2 (runs that may hold a valley): the highest value to the right of each sample
         if check:
