@@ -129,9 +129,14 @@ def scan_batch(x, a, means, base, lo_sigma, hi_sigma, min_height, clip_sigma, gr
         hi_t = bl + max(hi_sigma * sigma, min_height)
         b_hi = x[i0]
         b_lo = x[i0]
-        for i in range(i0 + 1, i1):
-            b_hi = max(b_hi, x[i])
-            b_lo = min(b_lo, x[i])
+        if i1 - i0 == BLOCK:              # a whole block: a fixed count, unrolled
+            for i in range(i0 + 1, i0 + BLOCK):
+                b_hi = max(b_hi, x[i])
+                b_lo = min(b_lo, x[i])
+        else:
+            for i in range(i0 + 1, i1):
+                b_hi = max(b_hi, x[i])
+                b_lo = min(b_lo, x[i])
         if run < 0 and not b_hi > lo_t:
             pass
         elif run >= 0 and b_lo > lo_t:
