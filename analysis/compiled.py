@@ -73,17 +73,34 @@ def parse_arg(spec: str):
     return (np.dtype(_DTYPES[dtype]), int(shape[:-1]), shape[-1])
 
 
-def _matches(args: tuple, specs: tuple) -> bool:
-    if len(args) != len(specs):
-        return False
-    for a, s in zip(args, specs):
-        if type(s) is str:
-            if not isinstance(a, _SCALARS[s]) or (s != "b1" and isinstance(a, (bool, np.bool_))):
-                return False
-        elif not (type(a) is np.ndarray and a.dtype == s[0] and a.ndim == s[1]
-                  and (s[2] == "A" or (a.flags.c_contiguous if s[2] == "C" else a.flags.f_contiguous))):
-            return False
-    return True
+def matcher(specs: tuple) -> Callable[..., bool]:
+    """A function of the arguments that says whether they match ``specs`` (parse_arg's).
+
+    Written out as one expression and compiled with exec (as the standard
+    library's dataclasses and namedtuple make their methods): a loop over the
+    arguments cost twice as much per call, and the counter makes tens of
+    thousands of calls a second.
+    """
+    env: dict = {"ndarray": np.ndarray, "BOOL": _SCALARS["b1"], "INT": _SCALARS["i8"], "REAL": _SCALARS["f8"]}
+    names = [f"a{i}" for i in range(len(specs))]
+    conds = []
+    for a, spec in zip(names, specs):
+        if type(spec) is str:
+            kind = {"b1": "BOOL", "i8": "INT", "f8": "REAL"}[spec]
+            conds.append(f"isinstance({a}, {kind})" if spec == "b1"
+                         else f"(isinstance({a}, {kind}) and not isinstance({a}, BOOL))")
+            continue
+        dtype, ndim, layout = spec
+        env[f"D_{a}"] = dtype
+        c = f"(type({a}) is ndarray and ({a}.dtype is D_{a} or {a}.dtype == D_{a}) and {a}.ndim == {ndim}"
+        if layout != "A":
+            c += f" and {a}.flags.{'c' if layout == 'C' else 'f'}_contiguous"
+        conds.append(c + ")")
+    src = f"def match(*args):\n    if len(args) != {len(specs)}:\n        return False\n" \
+          f"    {', '.join(names)}{',' if len(names) == 1 else ''} = args\n" \
+          f"    return {' and '.join(conds) or 'True'}\n"
+    exec(src, env)
+    return env["match"]
 
 
 def checked(name: str, variants: list[tuple[tuple, Callable]]) -> Callable:
@@ -94,17 +111,20 @@ def checked(name: str, variants: list[tuple[tuple, Callable]]) -> Callable:
     """
     if len(variants) == 1:
         (specs, fn), = variants
+        match = matcher(specs)
 
         def one(*args):
-            if not _matches(args, specs):
+            if not match(*args):
                 raise TypeError(f"{name}: arguments {_describe(args)} do not match {specs}")
             return fn(*args)
         one.__name__ = name
         return one
 
+    tried = [(matcher(specs), fn) for specs, fn in variants]
+
     def several(*args):
-        for specs, fn in variants:
-            if _matches(args, specs):
+        for match, fn in tried:
+            if match(*args):
                 return fn(*args)
         raise TypeError(f"{name}: arguments {_describe(args)} match none of "
                         f"{[s for s, _ in variants]}")

@@ -182,6 +182,7 @@ _new_tuple = tuple.__new__
 
 # direction dtypes the compiled chunk check takes as they are (build_kernels.EXPORTS)
 _CHECKED_DIRECTIONS = (np.dtype(np.int8), np.dtype(np.int64), np.dtype(np.float64))
+_F8 = np.dtype(np.float64)
 
 
 class _Buf:
@@ -397,13 +398,19 @@ class StreamCounter:
         """Take one chunk of samples; return the events confirmed so far (in order)."""
         if self._finished:
             raise RuntimeError("StreamCounter.feed() after finish()")
-        p = np.asarray(position_steps).ravel()
-        if p.dtype.kind not in "iuf":    # integer or float positions are stored as they come
-            p = p.astype(np.float64)
-        x = np.asarray(value, dtype=np.float64).ravel()
-        d = np.asarray(direction).ravel()
-        if d.dtype not in _CHECKED_DIRECTIONS:
-            d = d.astype(np.float64)     # the compiled check is built for these only
+        p, d, x = position_steps, direction, value
+        # the usual input (1-d arrays of the types stored) goes through untouched
+        if not (type(p) is np.ndarray and p.ndim == 1 and p.dtype.kind in "iuf"):
+            p = np.asarray(p).ravel()
+            if p.dtype.kind not in "iuf":    # integer or float positions are stored as they come
+                p = p.astype(np.float64)
+        if not (type(x) is np.ndarray and x.dtype is _F8 and x.ndim == 1 and x.flags.c_contiguous):
+            x = np.asarray(x, dtype=np.float64).ravel()
+        if not (type(d) is np.ndarray and d.ndim == 1 and d.dtype in _CHECKED_DIRECTIONS
+                and d.flags.c_contiguous):
+            d = np.asarray(d).ravel()
+            if d.dtype not in _CHECKED_DIRECTIONS:
+                d = d.astype(np.float64)     # the compiled check is built for these only
         if not (p.size == x.size == d.size):
             raise ValueError(f"feed: position, direction and value differ in length "
                              f"({p.size}, {d.size}, {x.size})")
@@ -427,7 +434,7 @@ class StreamCounter:
             pb.extend(p)
             db.extend(d)
         self._n += n
-        self._last_in = int(self._db.arr[self._db.hi - 1])
+        self._last_in = int(db.arr[db.hi - 1])
         now = time.monotonic()
         if now - self._last_proc >= self.max_latency_s:
             self._process(final=False, events=True)
