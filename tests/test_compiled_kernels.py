@@ -77,8 +77,14 @@ def test_a_wrong_argument_type_is_refused_not_read_as_raw_memory():
         kern.grey_opening(np.arange(4.0, dtype=np.float32), 3, out)
     with pytest.raises(TypeError, match="grey_opening"):
         kern.grey_opening(np.arange(8.0)[::2], 3, out)     # strided where contiguous was built
+    with pytest.raises(TypeError, match="grey_opening"):
+        kern.grey_opening(np.arange(4.0), 3.0, out)             # a float where an integer was built
+    with pytest.raises(TypeError, match="grey_opening"):
+        kern.grey_opening(np.arange(4.0), True, out)            # nor a bool for it
+    with pytest.raises(TypeError, match="grey_opening"):
+        kern.grey_opening(np.arange(4.0), 3)                    # an argument short
     with pytest.raises(TypeError, match="check_chunk"):
-        kern.check_chunk(np.ones(3, np.int32), np.ones(3))
+        kern.check_chunk(np.ones(3, np.int32), np.ones(3))      # none of the three built
 
 
 @needs_build
