@@ -14,6 +14,11 @@ from drivers.messages import open_reason, short
 from drivers.replies import parse_value
 from drivers.retry import with_retries
 
+# The SCPI error queue's answer (SCPI-99, from memory): an integer code, a comma, a quoted
+# message, e.g. 0,"No error" or -113,"Undefined header" (some meters leave the quotes out).
+SCPI_ERROR_REPLY = re.compile(r'\s*[-+]?\d+\s*,\s*("[^"]*"|[A-Za-z].*)\s*', re.S)
+MAX_STALE_REPLIES = 2    # late replies read past before the error queue's answer
+
 # The section also needs drivers.retry.RETRY_KEYS.
 VISA_KEYS = {
     "resource": (str, ...),        # any VISA resource string, e.g. "ASRL/dev/ttyUSB1::INSTR",
@@ -117,11 +122,36 @@ class VisaLink:
             pass
 
     def error_queue(self) -> str | None:
-        """One entry of the IEEE 488.2 / SCPI error queue (SYST:ERR?), or None."""
+        """One entry of the IEEE 488.2 / SCPI error queue (SYST:ERR?), or None.
+
+        A reply that is not ``<code>,"<message>"`` is a late answer to the failed
+        command that arrived first: the queue's own answer is read after it, so
+        that neither passes for the other (the late number for the error, the
+        error for the next reading)."""
         try:
-            return self.query("SYST:ERR?")
+            reply = self.query("SYST:ERR?")
+            for _ in range(MAX_STALE_REPLIES):
+                if SCPI_ERROR_REPLY.fullmatch(reply):
+                    return reply
+                reply = self.read_reply("SYST:ERR?")
+            return None
         except DeviceError:
             return None
+        finally:
+            self.discard_input()
+
+    def read_reply(self, command: str) -> str:
+        """The next reply line, for a command already sent."""
+        try:
+            reply = self.res.read()
+        except self._pyvisa.errors.VisaIOError as exc:
+            raise TransientDeviceError(f"{self.where()}: sent {command!r}, no further reply "
+                                       f"({short(exc)})") from None
+        except UnicodeDecodeError:
+            raise TransientDeviceError(f"{self.where()}: sent {command!r}, got undecodable bytes") from None
+        except Exception as exc:
+            raise DeviceError(f"{self.where()}: port closed or cable pulled while reading ({short(exc)})") from None
+        return reply.strip()
 
     def recover(self) -> str | None:
         """After a failed exchange: drop late input, then quote the error queue."""

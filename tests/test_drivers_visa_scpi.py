@@ -125,3 +125,32 @@ def test_pyvisa_sim_backend():
     assert det.identify().startswith("Modetick Emulated, PDM-100")
     assert det.read().value == 0.125                 # the definition's default reading
     det.close()
+
+
+def test_a_late_reply_is_not_taken_for_the_error_queue_or_the_next_reading(meter):
+    # The meter answers MEAS:VOLT:DC? after the driver has timed out; the driver then asks
+    # SYST:ERR?, and the meter (busy until the late reply is out) answers that next. The late
+    # number must not pass for the error queue's answer, nor the error queue's "0,..." for
+    # the retried reading.
+    port, inst, raw = meter
+    det = open_meter(resource=visa_resource(port), retries=2, timeout_s=WAITED_S)
+    raw.steps = 23
+    expected = 2.5 * raw.value_at(23) + 0.01
+    port.faults.late_s = 1.5 * WAITED_S
+    port.faults.inject("late", 1)
+    try:
+        assert det.read().value == pytest.approx(expected, rel=1e-7)
+        assert port.faults.injected["late"] == 1
+        raw.steps = 25                  # and the exchange after it is in step again
+        assert det.read().value == pytest.approx(2.5 * raw.value_at(25) + 0.01, rel=1e-7)
+    finally:
+        det.close()
+
+
+@pytest.mark.parametrize("reply, is_queue", [
+    ('0,"No error"', True), ('+0,"No error"', True), ('-113,"Undefined header"', True),
+    ("0,No error", True), ("+1.51000000E+00", False), ("1,2", False), ("+2.5E-01,+3.0E-01", False)])
+def test_error_queue_answers_told_from_readings(reply, is_queue):
+    # SCPI-99 (from memory): SYST:ERR? answers <code>,"<message>"; a reading is a number
+    from drivers.visa_link import SCPI_ERROR_REPLY
+    assert bool(SCPI_ERROR_REPLY.fullmatch(reply)) is is_queue
