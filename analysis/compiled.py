@@ -39,21 +39,23 @@ def source_stamp() -> int:
 
 
 def _load_aot():
+    """(the ahead-of-time module or None, why not)."""
     if os.environ.get(ENV_MODE, "").lower() == "jit":
-        return None
+        return None, f"{ENV_MODE}=jit"
     try:
         from analysis import _kernels_aot as mod
     except ImportError:
-        return None
+        return None, "no ahead-of-time build (python -m analysis.build_kernels makes one)"
     try:
         if mod.source_stamp() != source_stamp():
-            return None          # built from other sources: a kernel was edited since
+            return None, ("the ahead-of-time build is of other kernel sources "
+                          "(rebuild: python -m analysis.build_kernels)")
     except AttributeError:
-        return None
-    return mod
+        return None, "not a modetick kernel build"
+    return mod, ""
 
 
-AOT = _load_aot()
+AOT, WHY_JIT = _load_aot()
 MODE = "aot" if AOT is not None else "jit"
 
 # --- argument checks for the ahead-of-time functions ------------------------------

@@ -33,6 +33,17 @@ SAFETY = ("Laser safety: grating-tuned diode lasers are often Class 3B or 4 and 
           "unless a rig file explicitly allows it within set limits.")
 
 
+class _Version(argparse.Action):
+    """--version, with the counter kernels' build (looked up only when asked)."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        from analysis import compiled
+        how = ("compiled ahead of time" if compiled.MODE == "aot" else
+               f"compiled by numba at first use: {compiled.WHY_JIT}")
+        print(f"modetick {__version__}; counter kernels {how}")
+        parser.exit()
+
+
 def build_parser(only: str | None = None) -> argparse.ArgumentParser:
     """The whole command line, or (``only``) just the one command about to run: each
     command module imports what it needs, so a command loads nothing of the others."""
@@ -41,7 +52,8 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
         description="Sweep a grating-tuned diode laser, count the chip's longitudinal modes live, "
                     "and report mode spacing and chip length with uncertainty.",
         epilog=SAFETY)
-    parser.add_argument("--version", action="version", version=f"modetick {__version__}")
+    parser.add_argument("--version", action=_Version, nargs=0,
+                        help="show the version and how the counter's kernels are compiled, and exit")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMANDS:
         if only is not None and name != only:

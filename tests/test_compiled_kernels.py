@@ -112,3 +112,16 @@ def test_every_export_is_a_kernel_with_as_many_arguments():
         n_args = len(inspect.signature(fn.py_func).parameters)
         assert all(len(args) == n_args for _, args in sigs), name
         assert all(build_kernels.numba_type(a) for _, args in sigs for a in args)
+
+
+def test_version_says_how_the_kernels_are_compiled():
+    env = {k: v for k, v in os.environ.items() if k != compiled.ENV_MODE}
+    env["PYTHONPATH"] = str(ROOT)
+    here = subprocess.run([sys.executable, "-m", "daq", "--version"], cwd=ROOT, env=env,
+                          capture_output=True, text=True, timeout=60)
+    forced = subprocess.run([sys.executable, "-m", "daq", "--version"], cwd=ROOT,
+                            env={**env, compiled.ENV_MODE: "jit"}, capture_output=True, text=True, timeout=60)
+    assert here.returncode == forced.returncode == 0
+    expected = "compiled ahead of time" if compiled.MODE == "aot" else "compiled by numba at first use"
+    assert here.stdout.startswith("modetick ") and expected in here.stdout
+    assert "at first use: MODETICK_KERNELS=jit" in forced.stdout
