@@ -150,9 +150,11 @@ def print_result(result: dict) -> None:
         fmt = lambda v: "…" if v is None else (f"{v:.6g}" if isinstance(v, float) else str(v))  # noqa: E731
         t.add_row(key, fmt(logged.get(key)), fmt(result.get(key)))
     con.print(t)
-    if ch.get("note"):
+    if ch.get("note"):       # nothing to compare with: every blip would be listed as gained
         con.print(ch["note"])
-    elif ch["identical"]:
+        con.print(f"{result['samples']:,} samples in {result['replay_s']:.2f} s")
+        return
+    if ch["identical"]:
         con.print("same count as the logged run, blip for blip")
     for word, key in (("lost", "modes_lost"), ("gained", "modes_gained")):
         for m in ch[key][:SHOWN]:

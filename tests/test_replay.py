@@ -211,3 +211,19 @@ def test_read_ahead_stops_its_thread_when_the_reader_leaves_early(tmp_path):
     while any(t.name.startswith("log reader") for t in threading.enumerate()):
         assert time.monotonic() < deadline, "the reader thread is still running"
         time.sleep(0.01)
+
+
+def test_a_log_without_counted_blips_is_replayed_without_a_list_of_gains(tmp_path):
+    # Samples written by another program (no events): the replay counts them and says there
+    # is nothing to compare with, instead of listing every mode as gained.
+    from sims.trace import simulate_trace
+    rig = load_rig(None, ["sweep.settle_s=0"])
+    tr = simulate_trace(rig.sections)
+    log = RunLog.create(tmp_path / "bare.db", rig)
+    log.append_samples(np.arange(tr.value.size) * 1e-3, tr.position_steps, tr.direction, tr.pass_index,
+                       tr.value)
+    log.close()
+    r = _cli("replay", tmp_path / "bare.db", "--fast")
+    assert r.returncode == 0, r.stderr
+    assert "holds no counted blips to compare with" in r.stdout and "gained" not in r.stdout
+    assert f"{tr.value.size:,} samples in" in r.stdout
