@@ -27,6 +27,7 @@ from drivers.base import DeviceError, Reading
 FLUSH_S = 0.25        # chunks go to the counter (and the dashboard) this often
 COMMIT_S = 1.0        # ... and are committed to the log with the counter state this often
 FLUSH_SAMPLES = 4096
+PAUSE_WAIT_S = 5.0    # at a pause, the longest wait for the writer to count what was taken
 RECENT = 900          # readings kept for the dashboard's strip chart
 STALL_READS = 500     # identical readings in a row before the detector is called stuck
 MIN_FREE_BYTES = 50_000_000
@@ -88,13 +89,27 @@ class _Writer:
     def _loop(self) -> None:
         while True:
             item = self._q.get()
-            if item is None:
-                return
-            if not self.failed:
-                try:
-                    self._write(item)
-                except BaseException as exc:  # noqa: BLE001 - handed to the loop's thread
-                    self.error, self.failed = exc, True
+            try:
+                if item is None:
+                    return
+                if not self.failed:
+                    try:
+                        self._write(item)
+                    except BaseException as exc:  # noqa: BLE001 - handed to the loop's thread
+                        self.error, self.failed = exc, True
+            finally:
+                self._q.task_done()
+
+    def wait_written(self, timeout_s: float) -> bool:
+        """Wait until every chunk handed over is counted and logged (at most timeout_s)."""
+        deadline = time.monotonic() + timeout_s
+        with self._q.all_tasks_done:
+            while self._q.unfinished_tasks:
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    return False
+                self._q.all_tasks_done.wait(left)
+        return True
 
     def put(self, item) -> None:
         self.raise_error()
@@ -378,6 +393,9 @@ class Engine:
 
     def _pause(self) -> None:
         self.flush()
+        if self._writer is not None:
+            # the dashboard shows PAUSED with the count of every sample taken
+            self._writer.wait_written(PAUSE_WAIT_S)
         self.state.paused = True
         self.note("status", "paused")
         while self.pause_flag.is_set() and not self.stop_flag():

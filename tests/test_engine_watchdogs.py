@@ -118,3 +118,42 @@ def test_a_held_up_scan_logs_the_gap_it_leaves(tmp_path):
     # (a loaded machine may add gaps of its own; this one must be among them)
     assert widest > 100 and max(held) >= 0.29, [e["detail"] for e in gaps]
     assert log.meta("status") != "faulted" and len(pos) > 2000
+
+
+class SlowCounter(StreamCounter):
+    """The counter, on a computer slow to count (each chunk takes 0.2 s)."""
+
+    def feed(self, *args):
+        import time
+        time.sleep(0.2)
+        return super().feed(*args)
+
+
+def test_pause_shows_the_count_of_every_sample_taken(tmp_path):
+    # When the dashboard says PAUSED, the writer thread has counted every sample taken
+    # before the pause, however slow it is: the count on screen is the count at the pause.
+    import threading
+    import time
+    rig = load_rig(None, ["sweep.settle_s=0.0005", "sweep.passes=1"])   # ~2 s of sweeping
+    s, d, _ = open_devices(rig.sections)
+    log = RunLog.create(tmp_path / "run.db", rig)
+    pause = threading.Event()
+    eng = Engine(rig, s, d, SlowCounter(rig["counter"]), log, LiveState(), pause_flag=pause)
+    seen = {}
+
+    def watch():
+        deadline = time.monotonic() + 60
+        while eng.state.samples < 500 and time.monotonic() < deadline:
+            time.sleep(0.005)
+        pause.set()
+        while not eng.state.paused and time.monotonic() < deadline:
+            time.sleep(0.001)
+        seen["shown"], seen["taken"] = eng.state.samples, eng._n_written
+        pause.clear()
+    w = threading.Thread(target=watch, daemon=True)
+    w.start()
+    eng.run()
+    w.join(timeout=60)
+    log.close()
+    assert 500 < seen["taken"] < 4000, seen          # paused mid-sweep
+    assert seen["shown"] == seen["taken"]
