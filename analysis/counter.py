@@ -541,7 +541,17 @@ class StreamCounter:
         if self._pend:
             spans = tuple(np.concatenate(v) for v in zip(*self._pend))
         revs, self._pend, self._npend, self._pend_revs = self._pend_revs, [], 0, []
-        self._events(spans, revs, self._done)
+        horizon = self._done
+        if 0 <= self._open < horizon:
+            # A run still open at the batch's end is a candidate that will end later and
+            # be cut at any reversal inside it: the event stage stops at its start, and the
+            # reversals (and spacing updates) after it wait, so that its piece before a
+            # turn is counted before the turn, wherever the batch ended.
+            horizon = self._open
+            held = [r for r in revs if r[0] > horizon]
+            if held:
+                revs, self._pend_revs = revs[:len(revs) - len(held)], held
+        self._events(spans, revs, horizon)
 
     def _init_noise(self, g_end: int) -> None:
         """Noise of the first group from the first group itself (look-ahead at start only)."""

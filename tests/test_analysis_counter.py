@@ -247,3 +247,33 @@ def test_settings_change_the_result_as_documented():
     c2, _ = count(tr.position, tr.direction, tr.value,
                   counter_settings={"expected_spacing_steps": 40.0})
     assert tr.truth["modes_strong"] <= c2.modes <= tr.truth["modes_all"]
+
+
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(which=st.sampled_from([0, 1, 2]),
+       sizes=st.lists(st.integers(min_value=50, max_value=3000), min_size=1, max_size=8))
+def test_work_done_at_every_chunk_changes_nothing(which, sizes):
+    # With max_latency_s=0 the counter works through what it has at every feed, so its
+    # batches end at every chunk boundary: a blip whose run is still open at a batch's end
+    # while the stage turns must still be counted before that turn, as in one batch.
+    tr, (ref_counter, ref_events) = _trace_turns(which)
+    c = StreamCounter(max_latency_s=0.0)
+    events, i, k = [], 0, 0
+    while i < tr.value.size:
+        n = sizes[k % len(sizes)]
+        events += c.feed(tr.position[i:i + n], tr.direction[i:i + n], tr.value[i:i + n])
+        i, k = i + n, k + 1
+    events += c.finish()
+    assert [tuple(e) for e in events] == [tuple(e) for e in ref_events]
+    assert c.estimate() == ref_counter.estimate()
+
+
+@lru_cache(maxsize=None)
+def _trace_turns(which: int):
+    """Traces whose passes end inside or just after a blip (the tail runs into the turn)."""
+    if which < 2:
+        return _trace(which)
+    spec = Spec(seed=23, n_modes=12, spacing_steps=30, passes=6, backlash_steps=12, snr=25,
+                width_frac=0.3, margin_spacings=0.15)
+    tr = make_trace(spec)
+    return tr, count(tr.position, tr.direction, tr.value)
