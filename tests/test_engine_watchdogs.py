@@ -117,7 +117,8 @@ def test_a_held_up_scan_logs_the_gap_it_leaves(tmp_path):
     widest = int(max(abs(pos[1:] - pos[:-1])))
     # (a loaded machine may add gaps of its own; this one must be among them)
     assert widest > 100 and max(held) >= 0.29, [e["detail"] for e in gaps]
-    assert log.meta("status") != "faulted" and len(pos) > 2000
+    # the run went on to the end of its pass (how densely depends on the machine's load)
+    assert log.meta("status") != "faulted" and pos.max() >= 4990 and len(pos) > 1000
 
 
 class SlowCounter(StreamCounter):
