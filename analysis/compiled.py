@@ -31,10 +31,13 @@ ENV_MODE = "MODETICK_KERNELS"   # "jit" forces numba's JIT
 
 
 def source_stamp() -> int:
-    """A 60-bit digest of the kernel sources: an ahead-of-time build is used only for these."""
+    """A 60-bit digest of the kernel sources and of the signatures exported
+    (build_kernels.EXPORTS): an ahead-of-time build is used only for these."""
+    from analysis.build_kernels import EXPORTS
     h = hashlib.sha256()
     for name in KERNEL_SOURCES:
         h.update((HERE / name).read_bytes())
+    h.update(repr(sorted(EXPORTS.items())).encode())
     return int(h.hexdigest()[:15], 16)
 
 
@@ -47,11 +50,20 @@ def _load_aot():
     except ImportError:
         return None, "no ahead-of-time build (python -m analysis.build_kernels makes one)"
     try:
-        if mod.source_stamp() != source_stamp():
+        stamp = source_stamp()
+    except OSError as exc:                 # sources not installed beside the build
+        return None, f"kernel sources not readable ({exc})"
+    from analysis.build_kernels import EXPORTS
+    try:
+        if mod.source_stamp() != stamp:
             return None, ("the ahead-of-time build is of other kernel sources "
                           "(rebuild: python -m analysis.build_kernels)")
     except AttributeError:
         return None, "not a modetick kernel build"
+    missing = [f"{n}__{i}" for n, sigs in EXPORTS.items() for i in range(len(sigs))
+               if not hasattr(mod, f"{n}__{i}")]
+    if missing:
+        return None, f"the ahead-of-time build lacks {', '.join(missing)}"
     return mod, ""
 
 

@@ -15,8 +15,9 @@ from drivers.replies import parse_value
 from drivers.retry import with_retries
 
 # The SCPI error queue's answer (SCPI-99, from memory): an integer code, a comma, a quoted
-# message, e.g. 0,"No error" or -113,"Undefined header" (some meters leave the quotes out).
-SCPI_ERROR_REPLY = re.compile(r'\s*[-+]?\d+\s*,\s*("[^"]*"|[A-Za-z].*)\s*', re.S)
+# message, e.g. 0,"No error" or -113,"Undefined header" (a quote inside is doubled; some
+# meters leave the quotes out).
+SCPI_ERROR_REPLY = re.compile(r'\s*[-+]?\d+\s*,\s*("(?:[^"]|"")*"|[A-Za-z].*)\s*', re.S)
 MAX_STALE_REPLIES = 2    # late replies read past before the error queue's answer
 
 # The section also needs drivers.retry.RETRY_KEYS.
@@ -130,10 +131,11 @@ class VisaLink:
         error for the next reading)."""
         try:
             reply = self.query("SYST:ERR?")
-            for _ in range(MAX_STALE_REPLIES):
+            for stale in range(MAX_STALE_REPLIES + 1):
                 if SCPI_ERROR_REPLY.fullmatch(reply):
                     return reply
-                reply = self.read_reply("SYST:ERR?")
+                if stale < MAX_STALE_REPLIES:
+                    reply = self.read_reply("SYST:ERR?")
             return None
         except DeviceError:
             return None

@@ -149,7 +149,8 @@ def test_a_late_reply_is_not_taken_for_the_error_queue_or_the_next_reading(meter
 
 @pytest.mark.parametrize("reply, is_queue", [
     ('0,"No error"', True), ('+0,"No error"', True), ('-113,"Undefined header"', True),
-    ("0,No error", True), ("+1.51000000E+00", False), ("1,2", False), ("+2.5E-01,+3.0E-01", False)])
+    ("0,No error", True), ('-113,"Undefined header ""FOO"""', True),   # a quote inside is doubled
+    ("+1.51000000E+00", False), ("1,2", False), ("+2.5E-01,+3.0E-01", False)])
 def test_error_queue_answers_told_from_readings(reply, is_queue):
     # SCPI-99 (from memory): SYST:ERR? answers <code>,"<message>"; a reading is a number
     from drivers.visa_link import SCPI_ERROR_REPLY
