@@ -99,7 +99,7 @@ class Rig:
 
 
 def default_rig_path() -> Path:
-    """configs/sim.toml of this checkout, whatever the working directory."""
+    """configs/sim.toml of this checkout (or of the installed package), whatever the working directory."""
     return Path(__file__).resolve().parent.parent / "configs" / "sim.toml"
 
 
