@@ -697,15 +697,7 @@ class StreamCounter:
     # ------------------------------------------------------------- event stage
     def _events(self, spans, revs: list[tuple], F: int) -> None:
         """Run the up/down counter over the new candidates and reversals, in time order."""
-        cols = None
-        if spans is not None:
-            st, en, conf, cl, cr = self._split(*spans)
-            c = self._measure(st, en, cl, cr, conf)
-            conf = c.pop("_conf", conf)
-            # single-sample spikes fail here: their 3-point median stays in the noise
-            keep = c["hmed"] > conf
-            if keep.any():
-                cols = {f: c[f][keep] for f in _CFIELDS}
+        runs = self._split(*spans) if spans is not None else None
         # cut points: reversals (after candidates ending at or before them) and the
         # ends of event groups (spacing updates), in time order
         cuts = [(r[0], 1, "r", r) for r in revs]
@@ -714,18 +706,50 @@ class StreamCounter:
         self._ev_done = F
         cuts.sort(key=lambda t: (t[0], t[1]))
         i = 0
-        ends = cols["end"] if cols is not None else None
+        measured = None
+        ends = runs[1] if runs is not None else None
         for t, prio, kind, obj in cuts:
-            if cols is not None:
+            if runs is not None:
                 j = int(np.searchsorted(ends, t, side="right"))
                 if j > i:
-                    self._dispatch_cands({f: v[i:j] for f, v in cols.items()})
+                    measured = self._dispatch_runs(runs, i, j, measured)
                     i = j
             self._dispatch(kind, obj)
-        if cols is not None and i < ends.size:
-            self._dispatch_cands({f: v[i:] for f, v in cols.items()})
+        if runs is not None and i < ends.size:
+            self._dispatch_runs(runs, i, ends.size, measured)
         if self._phase != "run":
             self._release(final=False)
+
+    def _long(self, st: np.ndarray, en: np.ndarray, S: float | None) -> np.ndarray:
+        """Runs spanning more than 0.6 spacing (all, the spacing unknown): the valley test's."""
+        if not S:
+            return np.ones(st.size, np.bool_)
+        t0 = self._t0
+        return np.abs(self._p[en - 1 - t0] - self._p[st - t0]) > 0.6 * S
+
+    def _dispatch_runs(self, runs, i: int, j: int, measured):
+        """Dispatch the candidates of runs i..j-1, measured with the spacing in force at
+        their turn (it changes at group ends and once at the start), so that where the
+        batches ended changes nothing. Runs are measured an event group at a time;
+        returns (first run, end run, columns, spacing) of the last measured."""
+        st, en, conf, cl, cr = runs
+        S = self._S
+        if (measured is None or j > measured[1]
+                or (S != measured[3]
+                    and (self._long(st[i:j], en[i:j], measured[3]) != self._long(st[i:j], en[i:j], S)).any())):
+            g = -(-int(en[i]) // EVENT_GROUP) * EVENT_GROUP      # the group end this run is counted by
+            k = max(j, int(np.searchsorted(en, g, side="right")))
+            c = self._measure(st[i:k], en[i:k], cl[i:k], cr[i:k], conf[i:k])
+            c["_conf"] = c.get("_conf", conf[i:k])
+            measured = (i, k, c, S)
+        c = measured[2]
+        a = int(np.searchsorted(c["start"], st[i], side="left"))
+        b = int(np.searchsorted(c["start"], en[j - 1] - 1, side="right"))
+        # single-sample spikes fail here: their 3-point median stays in the noise
+        keep = c["hmed"][a:b] > c["_conf"][a:b]
+        if keep.any():
+            self._dispatch_cands({f: c[f][a:b][keep] for f in _CFIELDS})
+        return measured
 
     # ---- dispatch (holding while the spacing or the first backlash is unknown)
     def _dispatch_cands(self, c: dict) -> None:

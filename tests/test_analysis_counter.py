@@ -277,3 +277,22 @@ def _trace_turns(which: int):
                 width_frac=0.3, margin_spacings=0.15)
     tr = make_trace(spec)
     return tr, count(tr.position, tr.direction, tr.value)
+
+
+def test_the_valley_test_follows_the_spacing_in_force_not_the_batch():
+    # Wide blips read 25 times a step: whether a run spans more than 0.6 spacing (and gets
+    # the valley test that may cut it in two) is decided with the spacing of the event group
+    # the run is counted in. Decided once per batch, it made 7 of 133 events differ when the
+    # work was done at every 1000-sample chunk.
+    spec = Spec(seed=1, n_modes=30, spacing_steps=40, reads_per_step=25, passes=4,
+                backlash_steps=10, snr=15, width_frac=0.45, margin_spacings=0.03,
+                short_reversals=2, short_reversal_steps=(2, 12), kick_rate=2e-3)
+    tr = make_trace(spec)
+    ref_counter, ref_events = count(tr.position, tr.direction, tr.value)
+    c = StreamCounter(max_latency_s=0.0)
+    events = []
+    for a in range(0, tr.value.size, 1000):
+        events += c.feed(tr.position[a:a + 1000], tr.direction[a:a + 1000], tr.value[a:a + 1000])
+    events += c.finish()
+    assert len(ref_events) > 100
+    assert [tuple(e) for e in events] == [tuple(e) for e in ref_events]
