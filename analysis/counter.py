@@ -1150,16 +1150,28 @@ class StreamCounter:
             return
         self._S = _median(self._gaps)
 
+    def _fit_from(self) -> int:
+        """Until the backlash is known: the first sample its fit may need, the start of
+        the run before the reversal it will be fitted at (the one waiting in the event
+        stage, or the next to come; the sample stage may have seen short turns after it)."""
+        last = self._lastrev[0] if self._lastrev is not None else -1
+        if self._phase == "align":
+            at = last
+        else:
+            at = next((r for r in self._revs if r > last), None)
+        if at is None:
+            return self._revs[-1] if self._revs else 0
+        before = [r for r in self._revs if r < at]
+        return before[-1] if before else 0
+
     def _trim(self) -> None:
         keep_from = self._done - 2
         if self._open >= 0:
             keep_from = min(keep_from, self._open - 2)
         if self._pend:
             keep_from = min(keep_from, int(self._pend[0][0][0]) - 2)
-        if self._b is None and self._S is not None:
-            # until the backlash is known, keep the last two runs for the fit
-            run_from = self._revs[-2] if len(self._revs) >= 2 else 0
-            keep_from = min(keep_from, max(run_from, self._done - MAX_RUN_SAMPLES))
+        if self._b is None:
+            keep_from = min(keep_from, max(self._fit_from(), self._done - MAX_RUN_SAMPLES))
         keep_from = max(keep_from, self._t0)
         cut = keep_from - self._t0
         if cut > 4 * GROUP:
