@@ -708,6 +708,8 @@ class StreamCounter:
         i = 0
         measured = None
         ends = runs[1] if runs is not None else None
+        if runs is not None:             # all at once; again later only where the spacing says
+            measured = (self._measured(runs, 0, ends.size), None)
         for t, prio, kind, obj in cuts:
             if runs is not None:
                 j = int(np.searchsorted(ends, t, side="right"))
@@ -727,29 +729,37 @@ class StreamCounter:
         t0 = self._t0
         return np.abs(self._p[en - 1 - t0] - self._p[st - t0]) > 0.6 * S
 
-    def _dispatch_runs(self, runs, i: int, j: int, measured):
-        """Dispatch the candidates of runs i..j-1, measured with the spacing in force at
-        their turn (it changes at group ends and once at the start), so that where the
-        batches ended changes nothing. Runs are measured an event group at a time;
-        returns (first run, end run, columns, spacing) of the last measured."""
+    def _measured(self, runs, i: int, k: int):
         st, en, conf, cl, cr = runs
+        c = self._measure(st[i:k], en[i:k], cl[i:k], cr[i:k], conf[i:k])
+        c["_conf"] = c.get("_conf", conf[i:k])
+        return (i, k, c, self._S)
+
+    def _dispatch_runs(self, runs, i: int, j: int, measured):
+        """Dispatch the candidates of runs i..j-1, as measured with the spacing in force at
+        their turn (it changes at group ends and once at the start), so that where the
+        batches ended changes nothing: when the spacing changed since they were measured,
+        and with it which runs get the valley test, their event group is measured again.
+        ``measured``: (all runs, that group) as _measured gives them; returns it updated."""
+        st, en = runs[0], runs[1]
+        full, group = measured
+        base = group if group is not None and group[0] <= i and j <= group[1] else full
         S = self._S
-        if (measured is None or j > measured[1]
-                or (S != measured[3]
-                    and (self._long(st[i:j], en[i:j], measured[3]) != self._long(st[i:j], en[i:j], S)).any())):
-            g = -(-int(en[i]) // EVENT_GROUP) * EVENT_GROUP      # the group end this run is counted by
-            k = max(j, int(np.searchsorted(en, g, side="right")))
-            c = self._measure(st[i:k], en[i:k], cl[i:k], cr[i:k], conf[i:k])
-            c["_conf"] = c.get("_conf", conf[i:k])
-            measured = (i, k, c, S)
-        c = measured[2]
+        if S != base[3]:
+            flips = self._long(st[i:], en[i:], base[3]) != self._long(st[i:], en[i:], S)
+            if not flips.any() and base is full:
+                full = base = full[:3] + (S,)     # as measured with S: no need to look again
+            elif flips[:j - i].any():
+                g = -(-int(en[i]) // EVENT_GROUP) * EVENT_GROUP      # the group end this run is counted by
+                base = group = self._measured(runs, i, max(j, int(np.searchsorted(en, g, side="right"))))
+        c = base[2]
         a = int(np.searchsorted(c["start"], st[i], side="left"))
         b = int(np.searchsorted(c["start"], en[j - 1] - 1, side="right"))
         # single-sample spikes fail here: their 3-point median stays in the noise
         keep = c["hmed"][a:b] > c["_conf"][a:b]
         if keep.any():
             self._dispatch_cands({f: c[f][a:b][keep] for f in _CFIELDS})
-        return measured
+        return full, group
 
     # ---- dispatch (holding while the spacing or the first backlash is unknown)
     def _dispatch_cands(self, c: dict) -> None:
