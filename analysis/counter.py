@@ -730,10 +730,12 @@ class StreamCounter:
         return np.abs(self._p[en - 1 - t0] - self._p[st - t0]) > 0.6 * S
 
     def _measured(self, runs, i: int, k: int):
+        """(i, k, candidate columns, spacing) of runs i..k-1 measured with the spacing now."""
         st, en, conf, cl, cr = runs
         c = self._measure(st[i:k], en[i:k], cl[i:k], cr[i:k], conf[i:k])
-        c["_conf"] = c.get("_conf", conf[i:k])
-        return (i, k, c, self._S)
+        # single-sample spikes fail here: their 3-point median stays in the noise
+        keep = c["hmed"] > c.pop("_conf", conf[i:k])
+        return (i, k, {f: c[f][keep] for f in _CFIELDS}, self._S)
 
     def _dispatch_runs(self, runs, i: int, j: int, measured):
         """Dispatch the candidates of runs i..j-1, as measured with the spacing in force at
@@ -755,10 +757,8 @@ class StreamCounter:
         c = base[2]
         a = int(np.searchsorted(c["start"], st[i], side="left"))
         b = int(np.searchsorted(c["start"], en[j - 1] - 1, side="right"))
-        # single-sample spikes fail here: their 3-point median stays in the noise
-        keep = c["hmed"][a:b] > c["_conf"][a:b]
-        if keep.any():
-            self._dispatch_cands({f: c[f][a:b][keep] for f in _CFIELDS})
+        if b > a:
+            self._dispatch_cands({f: v[a:b] for f, v in c.items()})
         return full, group
 
     # ---- dispatch (holding while the spacing or the first backlash is unknown)
