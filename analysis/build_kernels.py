@@ -36,7 +36,6 @@ EXPORTS: dict[str, list[tuple[str, tuple[str, ...]]]] = {
                              "int64:2C", I1))],
     "grey_opening": [("void", (F1, "i8", F1))],
     # crossing_kernels
-    "close_crossing": [("Tuple((f8, f8, b1))", (F1, I1, "f8", "f8", "f8"))],
     "merge_and_number": [("Tuple((i8, i8, i8))",
                           (F1, F1, F1, I1, I1, I1, B1, F1, F1, F1, I1, "i8", F1, I1, "f8", "f8", "f8", "f8",
                            "f8", "f8", "f8", "f8", "f8", "int64:2F", "float64:2F", F1, I1))],
@@ -45,15 +44,13 @@ EXPORTS: dict[str, list[tuple[str, tuple[str, ...]]]] = {
     "backlash_pairs": [("i8", (I1, F1, I1, I1, F1, I1, F1))],
 }
 
-_NB_SCALAR = {"f8": "f8", "i8": "i8", "b1": "b1"}
-_NB_DTYPE = {"float64": "f8", "int64": "i8", "int32": "i4", "int16": "i2", "int8": "i1", "uint8": "u1",
-             "bool": "b1"}
+_NB_DTYPE = {"float64": "f8", "int64": "i8", "int8": "i1", "bool": "b1"}
 
 
 def numba_type(spec: str) -> str:
     """An argument spec as a numba type string: "float64:2F" -> "f8[::1, :]"."""
-    if spec in _NB_SCALAR:
-        return _NB_SCALAR[spec]
+    if spec in ("f8", "i8", "b1"):       # scalars are spelt as numba spells them
+        return spec
     dtype, shape = spec.split(":")
     ndim, layout = int(shape[:-1]), shape[-1]
     dims = [":"] * ndim

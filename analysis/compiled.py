@@ -4,7 +4,7 @@ The loops in signal_kernels.py and crossing_kernels.py are compiled with
 numba. Installing modetick also compiles them ahead of time into the
 extension module ``analysis._kernels_aot`` (analysis/build_kernels.py, run by
 setup.py). When that module is there and was built from the kernel sources
-as they are now, the kernels come from it and numba is never imported: a
+and signatures as they are now, the kernels come from it and numba is never imported: a
 command that counts then starts in a tenth of a second instead of half a
 second or more (numba's import and its first call). Otherwise, or with
 MODETICK_KERNELS=jit in the environment, numba compiles them on first use
@@ -43,6 +43,7 @@ def source_stamp() -> int:
 
 def _load_aot():
     """(the ahead-of-time module or None, why not)."""
+    from analysis.build_kernels import EXPORTS
     if os.environ.get(ENV_MODE, "").lower() == "jit":
         return None, f"{ENV_MODE}=jit"
     try:
@@ -53,7 +54,6 @@ def _load_aot():
         stamp = source_stamp()
     except OSError as exc:                 # sources not installed beside the build
         return None, f"kernel sources not readable ({exc})"
-    from analysis.build_kernels import EXPORTS
     try:
         if mod.source_stamp() != stamp:
             return None, ("the ahead-of-time build is of other kernel sources "
@@ -72,8 +72,7 @@ MODE = "aot" if AOT is not None else "jit"
 
 # --- argument checks for the ahead-of-time functions ------------------------------
 
-_DTYPES = {"float64": np.float64, "int64": np.int64, "int32": np.int32, "int16": np.int16,
-           "int8": np.int8, "uint8": np.uint8, "bool": np.bool_}
+_DTYPES = {"float64": np.float64, "int64": np.int64, "int8": np.int8, "bool": np.bool_}
 _SCALARS = {"f8": (float, int, np.floating, np.integer), "i8": (int, np.integer),
             "b1": (bool, np.bool_)}
 

@@ -74,8 +74,16 @@ class VisaLink:
         return f"{self.label} {self.resource_name}"
 
     def query(self, command: str) -> str:
+        return self._reply(command, lambda: self.res.query(command))
+
+    def read_reply(self, command: str) -> str:
+        """The next reply line, for a command already sent."""
+        return self._reply(command, self.res.read)
+
+    def _reply(self, command: str, exchange) -> str:
+        """One reply line from ``exchange()``, its failures as device errors."""
         try:
-            reply = self.res.query(command)
+            reply = exchange()
         except self._pyvisa.errors.VisaIOError as exc:
             if exc.error_code == self._pyvisa.constants.StatusCode.error_timeout:
                 raise TransientDeviceError(f"{self.where()}: sent {command!r}, no reply within "
@@ -142,18 +150,6 @@ class VisaLink:
         finally:
             self.discard_input()
 
-    def read_reply(self, command: str) -> str:
-        """The next reply line, for a command already sent."""
-        try:
-            reply = self.res.read()
-        except self._pyvisa.errors.VisaIOError as exc:
-            raise TransientDeviceError(f"{self.where()}: sent {command!r}, no further reply "
-                                       f"({short(exc)})") from None
-        except UnicodeDecodeError:
-            raise TransientDeviceError(f"{self.where()}: sent {command!r}, got undecodable bytes") from None
-        except Exception as exc:
-            raise DeviceError(f"{self.where()}: port closed or cable pulled while reading ({short(exc)})") from None
-        return reply.strip()
 
     def recover(self) -> str | None:
         """After a failed exchange: drop late input, then quote the error queue."""
