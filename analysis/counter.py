@@ -56,6 +56,7 @@ EVENT_GROUP = 65536  # samples per update of the running spacing and typical bli
 BATCH = 131072       # samples the work waits for (or max_latency_s), see StreamCounter;
                      # also the most done in one pass: a batch's samples and positions
                      # (2 MB) stay in cache through its passes (262144: 12 % slower)
+CHUNK_ROOM = 16384   # places kept free for the next chunks after a trim (see _Buf.make_room)
 EVENT_MIN = 64       # candidates that wait to be counted together (see max_latency_s)
 N_INIT = 12          # candidates in one run before the spacing is first estimated
 INIT_COUNTS = (12, 24, 48, 96, 192)   # candidate counts at which that is tried
@@ -210,6 +211,14 @@ class _Buf:
 
     def drop(self, k: int) -> None:
         self.lo += k
+
+    def make_room(self, n: int) -> None:
+        """Move the live samples to the front if fewer than n free places are left:
+        done right after a trim, it copies few samples, not a whole batch."""
+        if self.hi + n > self.arr.size and self.hi - self.lo + n <= self.arr.size:
+            live = self.hi - self.lo
+            self.arr[:live] = self.arr[self.lo:self.hi]
+            self.lo, self.hi = 0, live
 
     @property
     def a(self) -> np.ndarray:
@@ -1189,6 +1198,10 @@ class StreamCounter:
             self._pb.drop(cut)
             self._db.drop(cut)
             self._t0 = keep_from
+        room = BATCH + (self._margin + 2) * BLOCK + CHUNK_ROOM
+        self._xb.make_room(room)
+        self._pb.make_room(room)
+        self._db.make_room(room)
         bkeep = max(self._bm0, min(self._t0 // BLOCK, self._done // BLOCK - self._margin - 2))
         if bkeep - self._bm0 > 4 * GROUP // BLOCK:
             self._bmb.drop(bkeep - self._bm0)

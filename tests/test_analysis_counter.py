@@ -299,3 +299,43 @@ def test_wide_blips_read_many_times_a_step_count_the_same_in_any_batches(seed):
     events += c.finish()
     assert len(ref_events) > 100
     assert [tuple(e) for e in events] == [tuple(e) for e in ref_events]
+
+
+# ---------------------------------------------------------------- sample buffer
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.sampled_from(["extend", "drop", "room"]), st.integers(0, 9000)),
+                max_size=40))
+def test_sample_buffer_keeps_what_a_plain_list_keeps(ops):
+    """The counter's growable buffer (appends in place, drops from the front, moves
+    its live samples to the front to make room) against a plain Python list."""
+    from analysis.counter import _Buf
+    buf, ref, nxt = _Buf(np.float64), [], 0
+    for op, n in ops:
+        if op == "extend":
+            buf.extend(np.arange(nxt, nxt + n, dtype=np.float64))
+            ref += list(range(nxt, nxt + n))
+            nxt += n
+        elif op == "drop":
+            k = min(n, len(ref))
+            buf.drop(k)
+            del ref[:k]
+        else:
+            size = buf.arr.size
+            buf.make_room(n)
+            assert buf.arr.size == size                  # never grows, only moves
+            if len(ref) + n <= size:
+                assert buf.hi + n <= buf.arr.size
+        assert buf.a.tolist() == ref
+
+
+def test_sample_buffer_moves_its_samples_to_the_front_only_when_room_is_short():
+    from analysis.counter import _Buf
+    buf = _Buf(np.float64, np.arange(3000.0))
+    buf.drop(2000)
+    buf.make_room(1000)                       # 3000 + 1000 fit in the 4096 places
+    assert (buf.lo, buf.hi) == (2000, 3000)
+    buf.make_room(3000)                       # they do not: the 1000 live samples move
+    assert (buf.lo, buf.hi) == (0, 1000)
+    assert buf.a.tolist() == list(range(2000, 3000))
+    buf.make_room(4000)                       # cannot fit without growing: left to extend()
+    assert (buf.lo, buf.hi, buf.arr.size) == (0, 1000, 4096)
