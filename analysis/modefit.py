@@ -18,6 +18,18 @@ def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = N
     group index varies), centred on the middle mode so the linear coefficient
     is the spacing there; its standard error comes from the residual scatter.
     Fewer than 6 modes: a straight line; fewer than 3: None.
+
+    Gross outliers (a centre pulled by a kick) are dropped from REJECT_MIN_MODES
+    modes on; with fewer, a 5-MAD cut drops good centres too often and the fit
+    then claims a precision it does not have. Residuals that follow each other
+    (a drift or a slow wobble the polynomial does not take up) carry less
+    information than as many independent ones: with r1 their lag-1
+    autocorrelation (in mode order), the standard error is multiplied by
+    sqrt((1 + r1) / (1 - r1)), the effective-sample-size correction for a trend
+    under AR(1) errors (Santer et al., J. Geophys. Res. 105 (2000) 7337, from
+    memory); details hold both standard errors and the effective degrees of freedom.
+    (r1 of fit residuals is biased low with few modes: the correction falls short
+    by ~1.5x at 40 modes under AR(1) scatter with rho = 0.6, by < 20 % at 120.)
     Returns (spacing, standard error, details).
     """
     k = np.asarray(k, float)
@@ -33,7 +45,7 @@ def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = N
     # takes that up when there are modes enough, so the residuals are scatter, not model.
     deg = 3 if k.size >= 20 else (2 if k.size >= 6 else 1)
     keep = np.ones(k.size, bool)
-    for _ in range(3):   # drop gross outliers (a centre pulled by a kick or a glitch)
+    for _ in range(3 if k.size >= REJECT_MIN_MODES else 0):   # drop gross outliers (a kick, a glitch)
         coef, cov, resid = _wls(x[keep], c[keep], w[keep], deg)
         r_all = c - np.polyval(coef, x)
         mad = 1.4826 * np.median(np.abs(r_all[keep] - np.median(r_all[keep])))
@@ -44,12 +56,34 @@ def fit_spacing(k: np.ndarray, centre: np.ndarray, weight: np.ndarray | None = N
         keep = new
     coef, cov, resid = _wls(x[keep], c[keep], w[keep], deg)
     slope = coef[-2]
-    se = math.sqrt(max(cov[-2, -2], 0.0))
+    se_ls = math.sqrt(max(cov[-2, -2], 0.0))
+    r1 = lag1_autocorrelation(resid[np.argsort(x[keep], kind="stable")] * np.sqrt(w[keep]))
+    factor = math.sqrt((1.0 + r1) / (1.0 - r1))
+    n = int(keep.sum())
     details = {"k_centre": kc, "degree": deg, "coef": coef.tolist(),
-               "n_modes": int(keep.sum()), "outliers": int((~keep).sum()),
+               "n_modes": n, "outliers": int((~keep).sum()),
                "residual_rms_steps": float(np.sqrt(np.mean(resid ** 2))) if resid.size else 0.0,
-               "centre_steps": float(np.polyval(coef, 0.0))}
-    return abs(float(slope)), se, details
+               "centre_steps": float(np.polyval(coef, 0.0)),
+               "se_least_squares": se_ls, "residual_lag1": r1, "se_factor": factor,
+               "dof": max(n * (1.0 - r1) / (1.0 + r1) - (deg + 1), 1.0)}
+    return abs(float(slope)), se_ls * factor, details
+
+
+REJECT_MIN_MODES = 15   # modes from which gross outliers are dropped
+R1_MAX = 0.9            # the most autocorrelation credited (factor 4.4): beyond, the model is wrong
+
+
+def lag1_autocorrelation(r: np.ndarray) -> float:
+    """Lag-1 autocorrelation of residuals in order, clipped to [0, R1_MAX]; 0 below 10 of
+    them (too few to tell). Negative values are not credited: they would shrink the error."""
+    r = np.asarray(r, float)
+    if r.size < 10:
+        return 0.0
+    r = r - r.mean()
+    den = float(r @ r)
+    if den <= 0:
+        return 0.0
+    return float(min(max(float(r[:-1] @ r[1:]) / den, 0.0), R1_MAX))
 
 
 def _wls(x, y, w, deg):

@@ -97,31 +97,48 @@ def length_from_steps(spacing_steps: float, centre_steps: float, deg_per_step: f
     return chip_length_um(lam, sp_nm, group_index)
 
 
+def chain_inputs(cal: Calibration, spacing_steps: float, spacing_u: float, centre_steps: float,
+                 group_index: float, group_index_u: float = 0.0):
+    """The inputs of length_from_steps (in its argument order) with their standard
+    uncertainties, named as the budget shows them."""
+    from analysis.uncertainty import Input
+    return [
+        Input("spacing_steps (fit)", spacing_steps, spacing_u, "slope of mode centre vs mode number"),
+        Input("centre_steps", centre_steps, 0.0, "centre of the counted range"),
+        Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
+        Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
+        Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
+        Input("[chip] group_index", group_index, group_index_u, "rig file"),
+    ]
+
+
 def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None, sections: dict,
                      centre_steps: float | None = None) -> dict | None:
-    """Spacing in nm, wavelength and chip length for the dashboard (first-order uncertainty).
+    """Spacing in nm, wavelength and chip length for the dashboard and the counter's own
+    summary, with GUM uncertainties from every calibration input (the angle offset and
+    the groove density too: at high Littrow angles they weigh as much as the spacing).
 
-    The full budget (all inputs, Monte Carlo check) comes from the offline
-    analysis; here the spacing fit, the step calibration and n_g are carried.
+    The offline analysis adds the Monte Carlo check and the budget.
     """
+    from analysis.uncertainty import gum
     cal = Calibration.from_sections(sections)
     if cal is None or not spacing_steps:
         return None
     sw = sections.get("sweep", {})
     if centre_steps is None:
         centre_steps = 0.5 * (sw.get("start", 0) + sw.get("stop", 0))
-    sp_nm, lam = spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step, cal.angle_at_zero_deg,
-                               cal.lines_per_mm, cal.order)
-    # Relative u of the spacing in nm: the fit's and the step calibration's.
-    rel_sp = math.hypot((spacing_steps_u or 0.0) / spacing_steps, cal.deg_per_step_u / cal.deg_per_step)
-    out = {"spacing_nm": sp_nm, "spacing_nm_u": sp_nm * rel_sp, "wavelength_nm": lam,
-           "length_um": None, "length_um_u": None}
+    order = cal.order
     chip = sections.get("chip", {})
     ng = chip.get("group_index")
+    inputs = chain_inputs(cal, spacing_steps, spacing_steps_u or 0.0, centre_steps,
+                          float(ng) if ng else 1.0, float(chip.get("group_index_u") or 0.0))
+    sp_nm, sp_nm_u, _ = gum(lambda sp, c, k, a0, lpm, g: spacing_nm_at(sp, c, k, a0, lpm, order)[0], inputs)
+    lam, lam_u, _ = gum(lambda sp, c, k, a0, lpm, g: littrow_wavelength_nm(a0 + k * c, lpm, order), inputs)
+    out = {"spacing_nm": float(sp_nm), "spacing_nm_u": sp_nm_u, "wavelength_nm": float(lam),
+           "wavelength_nm_u": lam_u, "length_um": None, "length_um_u": None}
     if ng:
-        L = chip_length_um(lam, sp_nm, ng)
-        rel_ng = (chip.get("group_index_u") or 0.0) / ng
-        out["length_um"], out["length_um_u"] = L, L * math.hypot(rel_sp, rel_ng)
+        L, L_u, _ = gum(lambda *x: length_from_steps(*x, order), inputs)
+        out["length_um"], out["length_um_u"] = float(L), L_u
     return out
 
 
@@ -150,3 +167,35 @@ def length_by_count(n_modes: int, span_nm: float, wavelength_nm: float, group_in
                                   Input("[chip] group_index", group_index, group_index_u, "rig file")])
     return {"modes": int(n_modes), "span_nm": float(span_nm), "spacing_nm": span_nm / intervals,
             "length_um": L, "length_um_u": L_u, "budget": budget}
+
+
+def length_by_count_steps(n_modes: int, first_steps: float, last_steps: float, end_u_steps: float,
+                          cal: Calibration, group_index: float, group_index_u: float = 0.0) -> dict:
+    """The by-count route on a calibrated stage: n_modes whose centres lie from first_steps
+    to last_steps (each end uncertain by end_u_steps), through the Littrow chain; the GUM
+    uncertainty of L carries the end centres and every calibration input."""
+    from analysis.uncertainty import Input, gum
+    if n_modes < 2:
+        raise ValueError("a count needs at least 2 modes to span anything")
+    intervals = n_modes - 1
+    order = cal.order
+
+    def ends(c0, c1, k, a0, lpm):
+        return (littrow_wavelength_nm(a0 + k * c0, lpm, order), littrow_wavelength_nm(a0 + k * c1, lpm, order))
+
+    def length(c0, c1, k, a0, lpm, ng):
+        l0, l1 = ends(c0, c1, k, a0, lpm)
+        return chip_length_um(0.5 * (l0 + l1), np.abs(l1 - l0) / intervals, ng)
+
+    inputs = [Input("first mode centre (steps)", first_steps, end_u_steps, "fit residual rms"),
+              Input("last mode centre (steps)", last_steps, end_u_steps, "fit residual rms"),
+              Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
+              Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
+              Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
+              Input("[chip] group_index", group_index, group_index_u, "rig file")]
+    l0, l1 = ends(first_steps, last_steps, cal.deg_per_step, cal.angle_at_zero_deg, cal.lines_per_mm)
+    span_nm = float(abs(l1 - l0))
+    L, L_u, budget = gum(length, inputs)
+    return {"modes": int(n_modes), "span_nm": span_nm, "spacing_nm": span_nm / intervals,
+            "wavelength_nm": float(0.5 * (l0 + l1)), "length_um": float(L), "length_um_u": L_u,
+            "budget": budget}

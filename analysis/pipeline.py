@@ -24,7 +24,7 @@ import numpy as np
 from analysis import physics
 from analysis.counter import StreamCounter
 from analysis.modefit import fit_spacing, mechanical_centres
-from analysis.uncertainty import Input, gum, monte_carlo
+from analysis.uncertainty import gum, monte_carlo
 
 FEED_CHUNK = 65536
 
@@ -160,19 +160,6 @@ def per_pass_results(ct: dict, pass_of_index: np.ndarray, fit: dict | None = Non
     return out
 
 
-def _budget_inputs(cal: physics.Calibration, chip: dict, spacing_steps: float, spacing_u: float,
-                   centre_steps: float) -> list[Input]:
-    return [
-        Input("spacing_steps (fit)", spacing_steps, spacing_u, "slope of mode centre vs mode number"),
-        Input("centre_steps", centre_steps, 0.0, "centre of the counted range"),
-        Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
-        Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
-        Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
-        Input("[chip] group_index", float(chip["group_index"]), float(chip.get("group_index_u") or 0.0),
-              "rig file"),
-    ]
-
-
 def calibrated_results(cal: physics.Calibration, chip: dict, spacing_steps: float, spacing_u: float,
                        centre_steps: float, mc_draws: int = 100_000) -> dict:
     order = cal.order
@@ -188,8 +175,8 @@ def calibrated_results(cal: physics.Calibration, chip: dict, spacing_steps: floa
     chip = chip or {}
     ng = chip.get("group_index")
     ng_in = ng if ng else 1.0
-    inputs = _budget_inputs(cal, {"group_index": ng_in, "group_index_u": chip.get("group_index_u", 0.0)},
-                            spacing_steps, spacing_u, centre_steps)
+    inputs = physics.chain_inputs(cal, spacing_steps, spacing_u, centre_steps, float(ng_in),
+                                  float(chip.get("group_index_u") or 0.0))
     _, sp_nm_u, _ = gum(spacing_nm_f, inputs)
     out: dict[str, Any] = {"spacing_nm": sp_nm, "spacing_nm_u": sp_nm_u, "wavelength_nm": lam,
                            "length_um": None, "length_um_u": None, "budget": None}
@@ -244,11 +231,24 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
     # the standard deviation of the pass spacings over sqrt(passes). The larger is used.
     pass_sp = [r["spacing_steps"] for r in result["per_pass"] if r["spacing_steps"] is not None]
     result["spacing_steps_u_fit"] = spacing_u
+    dof = fit["dof"] if fit else None
     if spacing is not None and len(pass_sp) >= 2:
         u_passes = float(np.std(pass_sp, ddof=1) / math.sqrt(len(pass_sp)))
         result["spacing_steps_u_passes"] = u_passes
-        spacing_u = max(spacing_u or 0.0, u_passes)
+        if u_passes > (spacing_u or 0.0):
+            spacing_u, dof = u_passes, len(pass_sp) - 1.0
         result["spacing_steps_u"] = spacing_u
+    result["notes"] = fit_notes(fit, len(pass_sp), spacing is not None)
+    if dof is not None:
+        from scipy.stats import t as student_t
+        # the expanded uncertainty for 95 % coverage is k95 * u with Student's t at the
+        # (effective) degrees of freedom of the estimate used (JCGM 100 G.3), not 2
+        result["spacing_steps_dof"] = dof
+        result["spacing_steps_k95"] = float(student_t.ppf(0.975, dof))
+        if dof < DOF_NOTE:
+            result["notes"].append(
+                f"{dof:.1f} effective degrees of freedom behind spacing_steps_u: for 95 % coverage multiply "
+                f"it by spacing_steps_k95 = {result['spacing_steps_k95']:.2f} (Student's t), not by 2")
     result["mode_map"] = [
         {"mode": int(k), "centre_up_steps": _f(u), "centre_down_steps": _f(dn), "centre_steps": _f(m),
          "n_up": int(nu), "n_down": int(nd), "height": _f(h), "width_steps": _f(w)}
@@ -272,23 +272,35 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
         span = float(abs(mech[ok][i_hi] - mech[ok][i_lo]))
         n_int = int(k_ok.max() - k_ok.min())
         if n_int > 0:
-            u_span = math.sqrt(2.0) * float((fit or {}).get("residual_rms_steps") or 0.0)
+            u_end = float((fit or {}).get("residual_rms_steps") or 0.0)
+            u_span = math.sqrt(2.0) * u_end
             bc = {"modes": n_int + 1, "span_steps": span, "intervals": n_int,
                   "spacing_steps": span / n_int, "spacing_steps_u": u_span / n_int}
             chip = (sections or {}).get("chip", {}) or {}
             if cal is not None and chip.get("group_index"):
-                lam_end = [physics.littrow_wavelength_nm(physics.angle_deg(
-                    float(mech[ok][i]), cal.deg_per_step, cal.angle_at_zero_deg), cal.lines_per_mm, cal.order)
-                    for i in (i_lo, i_hi)]
-                span_nm = abs(lam_end[1] - lam_end[0])
-                rel = math.hypot(u_span / span if span else 0.0,
-                                 cal.deg_per_step_u / abs(cal.deg_per_step) if cal.deg_per_step else 0.0)
-                bc.update(physics.length_by_count(
-                    n_int + 1, span_nm, 0.5 * (lam_end[0] + lam_end[1]), float(chip["group_index"]),
-                    span_nm_u=span_nm * rel, group_index_u=float(chip.get("group_index_u") or 0.0)))
-                bc["span_steps"] = span
+                bc.update(physics.length_by_count_steps(
+                    n_int + 1, float(mech[ok][i_lo]), float(mech[ok][i_hi]), u_end, cal,
+                    float(chip["group_index"]), float(chip.get("group_index_u") or 0.0)))
             result["by_count"] = bc
     return result
+
+
+LAG1_NOTE = 0.5    # residual autocorrelation from which the report says so
+DOF_NOTE = 10.0    # effective degrees of freedom below which k = 2 is not 95 %
+
+
+def fit_notes(fit: dict | None, n_passes: int, have_spacing: bool) -> list[str]:
+    """What the spacing's standard uncertainty leaves out, or how to read it, in words."""
+    notes = []
+    if have_spacing and n_passes < 2:
+        notes.append("one pass only: a drift of the chip's modes during the sweep (temperature, current) "
+                     "stretches or shrinks the spacing and cannot be told apart from it, so spacing_steps_u "
+                     "leaves it out; sweep back and forth (sweep.passes >= 2) to measure it")
+    if fit and fit.get("residual_lag1", 0.0) >= LAG1_NOTE:
+        notes.append(f"the mode centres wander about the fit (lag-1 autocorrelation {fit['residual_lag1']:.2f}): "
+                     f"the spacing's standard error is {fit['se_factor']:.2g} times the least-squares one; "
+                     "a drift during the sweep is the usual cause")
+    return notes
 
 
 def _f(x) -> float | None:

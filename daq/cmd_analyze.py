@@ -127,3 +127,5 @@ def print_result(result: dict) -> None:
         con.print(b)
     for gap in result.get("gaps") or []:
         con.print(f"[yellow]gap:[/] {gap}")
+    for note in result.get("notes") or []:
+        con.print(f"[yellow]note:[/] {note}")

@@ -277,4 +277,7 @@ def _print_table(summary: dict) -> None:
     if "truth" in summary:
         t.add_row("truth (sim)", ", ".join(f"{k} {v:.6g}" if isinstance(v, float) else f"{k} {v}"
                                             for k, v in summary["truth"].items() if v is not None))
-    Console(stderr=False).print(t)
+    con = Console(stderr=False)
+    con.print(t)
+    for note in summary.get("notes") or []:
+        con.print(f"[yellow]note:[/] {note}")

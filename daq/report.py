@@ -745,6 +745,7 @@ def report_notes(a: AnalyzedLog, passes: list[PassBlips]) -> list[str]:
         notes.append(f"The trace figure shows passes {shown} of {len(passes)}; passes.png has every pass.")
     if a.result.get("fit") in (None, {}):
         notes.append("Too few modes for a fit (three or more are needed): no fit figure.")
+    notes += [n[0].upper() + n[1:] + "." for n in a.result.get("notes") or []]
     return notes
 
 

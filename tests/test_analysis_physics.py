@@ -50,8 +50,12 @@ def test_spacing_in_steps_to_nm_hand_worked():
     sp, lam = physics.spacing_nm_at(46.0, 5000.0, 2e-4, 44.0, 1500.0, 1)
     assert lam == pytest.approx(942.809, abs=1e-3)
     assert sp == pytest.approx(942.809 * math.radians(46 * 2e-4), rel=1e-5)
+    # L = lambda^2 / (2 n_g delta_lambda) from the hand values above, not the code's:
+    # 942.809^2 / (2 * 3.62 * 942.809 * 1.6057e-4) nm = 942.809 / 1.16253e-3 nm = 811.0 um
+    lam_hand, sp_hand = 2 * (1e6 / 1500) * math.sin(math.radians(45.0)), 942.809 * math.radians(46 * 2e-4)
     assert physics.length_from_steps(46.0, 5000.0, 2e-4, 44.0, 1500.0, 3.62, 1) == \
-        pytest.approx(lam ** 2 / (2 * 3.62 * sp) / 1000.0)
+        pytest.approx(lam_hand ** 2 / (2 * 3.62 * sp_hand) / 1000.0, rel=1e-5)
+    assert physics.length_from_steps(46.0, 5000.0, 2e-4, 44.0, 1500.0, 3.62, 1) == pytest.approx(811.0, abs=0.1)
 
 
 def test_by_count_route_hand_worked():

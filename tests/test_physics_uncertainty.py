@@ -73,6 +73,71 @@ def test_gum_agrees_with_the_uncertainties_library():
     assert [r["contribution"] for r in budget] == sorted((r["contribution"] for r in budget), reverse=True)
 
 
+def _positive(x):
+    return x if x.nominal_value > 0 else -x
+
+
+def _ref_chain(sp, c, k, a0, lpm, ng):
+    """The Littrow chain written out for the `uncertainties` package (automatic
+    differentiation, first order): (spacing nm, wavelength nm, length um)."""
+    d = 1e6 / lpm
+    lam = lambda s: 2 * d * umath.sin(umath.radians(a0 + k * s))  # noqa: E731  Palmer
+    dl = _positive(lam(c + sp / 2) - lam(c - sp / 2))
+    return dl, lam(c), lam(c) ** 2 / (2 * ng * dl) / 1000        # Coldren et al.
+
+
+# Rigs of our own: the demo bench (940 nm, 1500 lines/mm, ~44.6 deg) and two at high
+# Littrow angles (1550 nm on 1200 lines/mm, 68.4 deg; 780 nm on 2400 lines/mm, 69.4 deg),
+# where L ~ sin^2(theta)/cos(theta) makes the angle offset weigh as much as the spacing.
+HIGH_ANGLE_RIGS = [
+    ({"deg_per_step": 2.0e-4, "deg_per_step_u": 2.0e-6, "angle_at_zero_deg": 44.0, "angle_at_zero_deg_u": 0.05},
+     {"lines_per_mm": 1500.0, "lines_per_mm_u": 0.5}, 3000.0, 45.6),
+    ({"deg_per_step": 2.0e-4, "deg_per_step_u": 1.0e-6, "angle_at_zero_deg": 68.0, "angle_at_zero_deg_u": 0.5},
+     {"lines_per_mm": 1200.0, "lines_per_mm_u": 0.3}, 2150.0, 18.3),
+    ({"deg_per_step": -1.0e-4, "deg_per_step_u": 5.0e-7, "angle_at_zero_deg": 70.0, "angle_at_zero_deg_u": 0.5},
+     {"lines_per_mm": 2400.0, "lines_per_mm_u": 1.0}, 6000.0, 61.0),
+]
+
+
+@pytest.mark.parametrize("stage,grating,centre,spacing", HIGH_ANGLE_RIGS)
+def test_live_figures_carry_every_calibration_input(stage, grating, centre, spacing):
+    # The dashboard's and the counter-only summary's figures (live_calibration) against the
+    # `uncertainties` package on the whole chain: the angle offset and the groove density
+    # count as well as the spacing, the step size and n_g.
+    sections = {"stage": stage, "grating": grating, "chip": {"group_index": 3.7, "group_index_u": 0.05}}
+    live = physics.live_calibration(spacing, 0.02, sections, centre_steps=centre)
+    sp, c = ufloat(spacing, 0.02), centre
+    k = ufloat(stage["deg_per_step"], stage["deg_per_step_u"])
+    a0 = ufloat(stage["angle_at_zero_deg"], stage["angle_at_zero_deg_u"])
+    lpm = ufloat(grating["lines_per_mm"], grating["lines_per_mm_u"])
+    dl, lam, L = _ref_chain(sp, c, k, a0, lpm, ufloat(3.7, 0.05))
+    assert live["spacing_nm"] == pytest.approx(dl.nominal_value, rel=1e-9)
+    assert live["spacing_nm_u"] == pytest.approx(dl.std_dev, rel=1e-3)
+    assert live["wavelength_nm_u"] == pytest.approx(lam.std_dev, rel=1e-3)
+    assert live["length_um"] == pytest.approx(L.nominal_value, rel=1e-9)
+    assert live["length_um_u"] == pytest.approx(L.std_dev, rel=1e-3)
+
+
+@pytest.mark.parametrize("stage,grating,centre,spacing", HIGH_ANGLE_RIGS)
+def test_by_count_route_carries_every_calibration_input(stage, grating, centre, spacing):
+    # N modes from the first centre to the last: delta_lambda = W / (N - 1) and
+    # L = lambda^2 / (2 n_g delta_lambda) at the mean wavelength, against `uncertainties`.
+    cal = physics.Calibration.from_sections({"stage": stage, "grating": grating})
+    n = 41
+    first, last = centre - 20 * spacing, centre + 20 * spacing
+    r = physics.length_by_count_steps(n, first, last, 0.3, cal, 3.7, 0.05)
+    k = ufloat(stage["deg_per_step"], stage["deg_per_step_u"])
+    a0 = ufloat(stage["angle_at_zero_deg"], stage["angle_at_zero_deg_u"])
+    lpm = ufloat(grating["lines_per_mm"], grating["lines_per_mm_u"])
+    d = 1e6 / lpm
+    lam = lambda s: 2 * d * umath.sin(umath.radians(a0 + k * s))  # noqa: E731
+    l0, l1 = lam(ufloat(first, 0.3)), lam(ufloat(last, 0.3))
+    L = ((l0 + l1) / 2) ** 2 / (2 * ufloat(3.7, 0.05) * _positive(l1 - l0) / (n - 1)) / 1000
+    assert r["length_um"] == pytest.approx(L.nominal_value, rel=1e-9)
+    assert r["length_um_u"] == pytest.approx(L.std_dev, rel=1e-3)
+    assert r["spacing_nm"] == pytest.approx(_positive(l1 - l0).nominal_value / (n - 1), rel=1e-9)
+
+
 def test_monte_carlo_agrees_with_gum():
     # JCGM 101: for a nearly linear model the Monte Carlo standard deviation matches the GUM u.
     def vec(sp, c, k, a0, lpm, ng):
@@ -82,6 +147,11 @@ def test_monte_carlo_agrees_with_gum():
     _, uy, _ = gum(_length, INPUTS)
     mc = monte_carlo(vec, INPUTS, draws=200_000)
     assert mc["u"] == pytest.approx(uy, rel=0.03)
+    # and a Monte Carlo of the test's own (plain numpy draws, another seed) agrees with both
+    rng = np.random.default_rng(4242)
+    y = vec(*(i.value + i.u * rng.standard_normal(200_000) for i in INPUTS))
+    assert float(np.std(y, ddof=1)) == pytest.approx(uy, rel=0.03)
+    assert float(np.std(y, ddof=1)) == pytest.approx(mc["u"], rel=0.03)
     lo, hi = mc["interval95"]
     assert lo < _length(*(i.value for i in INPUTS)) < hi
 
@@ -107,5 +177,9 @@ def test_spacing_uncertainty_covers_pass_to_pass_scatter():
     tr = simulate_trace(rig.sections)
     truth = SimBench(rig.sections).truth()
     r = analyze_trace(tr.position_steps, tr.value, tr.direction, tr.pass_index, rig.sections, rig["counter"])
-    assert r["spacing_steps_u"] >= r["spacing_steps_u_fit"]
+    # the Type A figure recomputed here from the passes' spacings (GUM 4.2.3: s / sqrt(n))
+    sp = [p["spacing_steps"] for p in r["per_pass"] if p["spacing_steps"] is not None]
+    assert len(sp) == 4
+    u_a = float(np.std(sp, ddof=1) / np.sqrt(len(sp)))
+    assert r["spacing_steps_u"] == pytest.approx(max(u_a, r["spacing_steps_u_fit"]), rel=1e-9)
     assert abs(r["spacing_steps"] - truth["spacing_steps"]) <= 3 * r["spacing_steps_u"]
