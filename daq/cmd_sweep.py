@@ -9,7 +9,7 @@ import threading
 from pathlib import Path
 
 from daq.errors import fail
-from daq.rig import RigError, load_rig
+from daq.rig import RigError, load_rig, reconnect
 from daq.runlog import LogError, RunLog, default_log_path
 
 HELP = "run a sweep (the simulated rig unless --config names another) and count modes live"
@@ -118,10 +118,10 @@ def run(args) -> int:
         if args.resume:
             if args.config or args.log:
                 return fail("--resume takes the rig and the log from LOG; leave out --config and --log", 2)
-            if args.set:
-                return fail("--resume continues with the rig stored in the log; --set cannot change it", 2)
             resume_log = RunLog.open(args.resume, writable=True)
             rig = resume_log.rig()
+            if args.set:      # only where the devices are plugged in (daq.rig.CONNECTION_KEYS)
+                rig = reconnect(rig, args.set)
         else:
             rig = load_rig(args.config, args.set)
     except (RigError, LogError) as exc:
@@ -146,6 +146,8 @@ def run(args) -> int:
             log = resume_log
             counter = _resumed_counter(log, StreamCounter)
             skip = log.n_samples
+            if args.set:        # the next resume finds the devices where they are now
+                log.set_meta(rig_json=rig.to_json())
         else:
             path = Path(args.log) if args.log else default_log_path()
             log = RunLog.create(path, rig)
@@ -170,7 +172,10 @@ def run(args) -> int:
                 if skip >= schedule.recorded_count(rig["sweep"]):
                     return fail(f"log {log.path}: the run is already complete", 2)
                 engine.reapproach(skip)
-            engine.note("status", f"resumed after {skip} samples")
+            log.drop_provisional_events()       # the restored counter counts them again
+            engine.passes_announced = len(log.events("pass"))
+            engine.note("status", f"resumed after {skip} samples"
+                                  + (f", devices now at {', '.join(args.set)}" if args.set else ""))
         log.set_meta(status="running")
         _route_warnings(engine)
         tty = sys.stdout.isatty() and not args.json and not args.plain

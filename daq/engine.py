@@ -150,6 +150,7 @@ class Engine:
         # Scan mode, resuming: the pass and position of the last logged sample
         # (set by the caller from the log before run()).
         self._resume_pass, self._resume_pos = 0, None
+        self.passes_announced = 0     # "pass" events already in the log (a resumed run's)
         self._last_value = None
         self._same_count = 0
 
@@ -209,7 +210,7 @@ class Engine:
                                               "stop with q and resume the log instead")
 
     def _new_pass(self, pass_index: int, direction: int, target: int, announce: bool) -> None:
-        if announce:
+        if announce and pass_index >= self.passes_announced:   # a resumed pass is not announced twice
             self.note("pass", f"pass {pass_index + 1} of {self.rig['sweep']['passes']} "
                               f"({'up' if direction > 0 else 'down'})", target)
         self.state.pass_index, self.state.direction = pass_index, direction
@@ -360,8 +361,11 @@ class Engine:
         """End of the stream: the counter's last open crossing is counted and logged.
 
         The counter state in the log stays the one saved with the last block,
-        so a run stopped here can still be resumed as if never finished.
+        so a run stopped here can still be resumed as if never finished; these
+        events are marked provisional, and a resume drops them (the restored
+        counter counts them again).
         """
+        self.log.mark_provisional_events()
         events = self.counter.finish()
         rows = [(ev.index, self.state.t_s, ev.kind, ev.position_steps, ev.direction,
                  ev.mode if ev.kind == "blip" else None, ev.height, ev.width_steps, None) for ev in events]

@@ -277,6 +277,27 @@ def load_rig(path: str | Path | None = None, overrides: list[str] | None = None)
     return parse_rig(text, str(p), overrides)
 
 
+# What a resumed run may change: where a device is plugged in, nothing about what it
+# measures (a USB adapter often comes back under another name after a pulled cable).
+CONNECTION_KEYS = ("port", "resource", "source")
+
+
+def reconnect(rig: Rig, items: list[str], source: str = "--resume") -> Rig:
+    """The rig with connection keys (CONNECTION_KEYS) changed by SECTION.KEY=VALUE items."""
+    sections = copy.deepcopy(rig.sections)
+    for item in items:
+        section, key, value = _parse_override(item, source)
+        if key not in CONNECTION_KEYS or key not in sections.get(section, {}):
+            have = [f"{sec}.{k}" for sec, t in sections.items() for k in CONNECTION_KEYS if k in t]
+            raise RigError(source, f"--set {item}",
+                           "a resumed run keeps the rig stored in its log; only where a device is "
+                           f"connected may change ({', '.join(have) or 'this rig has no such key'})")
+        if not isinstance(value, str) or not value:
+            raise RigError(source, f"--set {item}", "must be a non-empty string")
+        sections[section][key] = value
+    return Rig(source=rig.source, text=rig.text, sections=sections, overrides=rig.overrides + list(items))
+
+
 def rig_from_json(blob: str) -> Rig:
     """Rebuild a Rig stored in a run log (values as resolved at the time)."""
     data = json.loads(blob)

@@ -277,6 +277,26 @@ class RunLog:
     def commit(self) -> None:
         self.conn.commit()
 
+    # The counter's last events at a stop (its open crossing, runs it still held) are
+    # provisional: a resumed run restores the counter from before them and counts them
+    # again, so they are marked when written and dropped on resume.
+    PROVISIONAL = "provisional_events_after"
+
+    def mark_provisional_events(self) -> None:
+        """Events appended from now on are provisional (committed before they are written)."""
+        last = self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM events").fetchone()[0]
+        self.set_meta(**{self.PROVISIONAL: str(last)})
+
+    def drop_provisional_events(self) -> int:
+        """Before a resume: delete the provisional events; returns how many there were."""
+        mark = self.meta(self.PROVISIONAL)
+        if mark is None:
+            return 0
+        n = self.conn.execute("DELETE FROM events WHERE id > ?", (int(mark),)).rowcount
+        self.conn.execute("DELETE FROM meta WHERE key = ?", (self.PROVISIONAL,))
+        self.conn.commit()
+        return n
+
     def finish(self, status: str, summary: dict | None = None, reason: str = "") -> None:
         items = {"status": status, "ended_utc": utc_now(), "reason": reason}
         if summary is not None:

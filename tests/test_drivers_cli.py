@@ -216,6 +216,33 @@ def test_cable_pulled_mid_sweep_stops_with_one_line_and_keeps_the_log(tmp_path):
     log.close()
 
 
+def test_after_a_pulled_cable_the_run_resumes_on_new_ports(tmp_path):
+    # The adapters come back under other names (a new pair of ptys): `--resume LOG --set
+    # stage.port=... --set detector.resource=...` finishes the run; the count is the
+    # emulator's truth and the log holds every blip once.
+    import sqlite3
+    log = tmp_path / "run.db"
+    with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter",
+                         "--close-after", "stepper:3000") as emu:
+        r = run_sweep(EMULATED, log, f"stage.port={emu.info['stepper']}",
+                      f"detector.resource={emu.info['meter_resource']}", *DUE)
+    assert r.returncode == 1, r.stderr
+    with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter") as emu2:
+        r = modetick("sweep", "--resume", str(log), "--json", *sets([
+            f"stage.port={emu2.info['stepper']}", f"detector.resource={emu2.info['meter_resource']}"]),
+            timeout=120)
+    assert r.returncode == 0, r.stderr
+    summary = json.loads(r.stdout)
+    assert summary["status"] == "finished"
+    assert abs(summary["modes"] - emu2.info["truth"]["modes"]) <= 1
+    con = sqlite3.connect(log)
+    blips = con.execute("SELECT i FROM events WHERE kind='blip'").fetchall()
+    assert len(blips) == len(set(blips)) == summary["crossings"]
+    stored = json.loads(con.execute("SELECT value FROM meta WHERE key='rig_json'").fetchone()[0])
+    assert stored["sections"]["stage"]["port"] == emu2.info["stepper"]
+    con.close()
+
+
 def test_continuous_scan_through_the_real_drivers(tmp_path):
     # [sweep] mode = "scan": one move per pass at constant speed (the rig's speed_command),
     # the meter read as fast as it answers, positions from the controller's reports.

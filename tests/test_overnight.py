@@ -145,7 +145,45 @@ def test_second_interrupt_at_human_pace_still_closes_the_log(tmp_path, gap_s):
     assert con.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
 
 
-def test_resume_refuses_overrides(tmp_path):
-    r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(tmp_path / "x.db"),
+def test_resume_refuses_overrides_but_where_devices_are_plugged_in(tmp_path):
+    from daq.rig import load_rig
+    from daq.runlog import RunLog
+    log = tmp_path / "x.db"
+    RunLog.create(log, load_rig(Path(ROOT, "configs", "serial-ascii.toml"))).close()
+    r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(log),
                         "--set", "sweep.step=2"], cwd=ROOT, capture_output=True, text=True, timeout=60)
-    assert r.returncode == 2 and "--set cannot change it" in r.stderr
+    assert r.returncode == 2 and "only where a device is" in r.stderr and "stage.port" in r.stderr
+    # a new port is taken (here one that does not exist: the open fails, exit 1, a clear reason)
+    r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(log),
+                        "--set", "stage.port=/dev/modetick-no-such-port"], cwd=ROOT,
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 1 and "/dev/modetick-no-such-port" in r.stderr, r.stderr
+
+
+def test_stop_then_resume_logs_every_event_once(tmp_path):
+    # A run stopped with SIGINT logs the counter's last (provisional) events; the resumed
+    # run's counter, restored from before them, counts them again. The log must end as an
+    # uninterrupted run's would: every blip once, one event per pass, and a replay of it
+    # that finds the same blips (none "lost" to duplicates).
+    log = tmp_path / "stopped.db"
+    proc = _sweep("--log", str(log), "--json", "--set", PACE, "--set", "sweep.passes=3")
+    _wait_for_samples(log, 2500, proc)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130, err
+    res = subprocess.run([sys.executable, "-m", "daq", "sweep", "--resume", str(log), "--json"],
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0, res.stderr
+    got = json.loads(res.stdout)
+    con = sqlite3.connect(log)
+    blips = con.execute("SELECT i FROM events WHERE kind='blip'").fetchall()
+    assert len(blips) == len(set(blips)) == got["crossings"]
+    assert con.execute("SELECT COUNT(*) FROM events WHERE kind='pass'").fetchone()[0] == 3
+    reversals = con.execute("SELECT i FROM events WHERE kind='reversal'").fetchall()
+    assert len(reversals) == len(set(reversals)) == 2
+    con.close()
+    rep = subprocess.run([sys.executable, "-m", "daq", "replay", str(log), "--fast", "--json"],
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert rep.returncode == 0, rep.stderr
+    ch = json.loads(rep.stdout)["changes"]
+    assert ch["identical"], ch
