@@ -107,8 +107,8 @@ def run(args) -> int:
                 _write_log(out, rig, trace, time_s)
         except LogError as exc:
             return fail(exc, 2)
-        except OSError as exc:
-            return fail(f"cannot write {out}: {exc}", 1)
+        except OSError as exc:        # a path that cannot be written: bad input, not a device
+            return fail(f"cannot write {out}: {exc}", 2)
     if args.json:
         print(json.dumps(truth))
     else:

@@ -150,7 +150,7 @@ def run(args) -> int:
                 log.set_meta(rig_json=rig.to_json())
         else:
             path = Path(args.log) if args.log else default_log_path()
-            log = RunLog.create(path, rig)
+            log = RunLog.create(path, rig, unique=not args.log)
             counter = StreamCounter(rig["counter"])
             skip = 0
         state.log_path = str(log.path)

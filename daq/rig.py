@@ -219,8 +219,14 @@ def parse_rig(text: str, source: str = "<string>", overrides: list[str] | None =
     except tomllib.TOMLDecodeError as exc:
         raise RigError(source, None, f"TOML syntax error: {exc}") from None
     raw = copy.deepcopy(raw)
+    given = {}      # (section, key) -> the --set item that gave it, for the error message
+
+    def said(name: str, key: str | None = None) -> str:
+        item = given.get((name, key)) or (given.get((name, None)) if key is None else None)
+        return f" (given by --set {item})" if item else ""
     for item in overrides:
         section, key, value = _parse_override(item, source)
+        given[(section, key)] = given[(section, None)] = item
         raw.setdefault(section, {})
         if not isinstance(raw[section], dict):
             raise RigError(source, f"[{section}]", "is not a table")
@@ -230,7 +236,7 @@ def parse_rig(text: str, source: str = "<string>", overrides: list[str] | None =
         if name not in CORE_SCHEMA:
             near = difflib.get_close_matches(name, CORE_SCHEMA, n=1)
             hint = f" (did you mean [{near[0]}]?)" if near else ""
-            raise RigError(source, f"[{name}]", f"unknown section{hint}")
+            raise RigError(source, f"[{name}]", f"unknown section{hint}{said(name)}")
         if not isinstance(table, dict):
             raise RigError(source, f"[{name}]", "must be a table of keys")
 
@@ -246,12 +252,12 @@ def parse_rig(text: str, source: str = "<string>", overrides: list[str] | None =
             if key not in schema:
                 near = difflib.get_close_matches(key, schema, n=1)
                 hint = f" (did you mean {near[0]!r}?)" if near else ""
-                raise RigError(source, f"[{name}] {key}", f"unknown key{hint}")
+                raise RigError(source, f"[{name}] {key}", f"unknown key{hint}{said(name, key)}")
             kind, _ = _spec(schema[key])
             coerced = _check_type(kind, value)
             if coerced is None:
                 raise RigError(source, f"[{name}] {key}",
-                               f"must be {_TYPE_WORDS.get(kind, kind.__name__)}, got {value!r}")
+                               f"must be {_TYPE_WORDS.get(kind, kind.__name__)}, got {value!r}{said(name, key)}")
             out[key] = coerced
         for key, entry in schema.items():
             if key in out:

@@ -26,6 +26,7 @@ so a killed process loses at most the last second and the file stays valid.
 from __future__ import annotations
 
 import json
+import os
 import sqlite3
 import zlib
 from dataclasses import dataclass
@@ -171,12 +172,27 @@ class RunLog:
 
     # -- opening ----------------------------------------------------------
     @classmethod
-    def create(cls, path: str | Path, rig: Any, status: str = "running") -> "RunLog":
-        """A new log for a run of ``rig`` (a daq.rig.Rig). Refuses to overwrite."""
+    def create(cls, path: str | Path, rig: Any, status: str = "running", unique: bool = False) -> "RunLog":
+        """A new log for a run of ``rig`` (a daq.rig.Rig). Refuses to overwrite; with
+        ``unique`` (a default name), takes NAME-2.db, NAME-3.db... instead. The file is
+        claimed atomically, so two runs started in the same second never share one."""
         path = Path(path)
-        if path.exists():
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise LogError(f"log {path}: cannot make its folder ({exc.strerror or exc})") from None
+        for k in range(1, 1000 if unique else 2):
+            p = path if k == 1 else path.with_name(f"{path.stem}-{k}{path.suffix}")
+            try:
+                os.close(os.open(p, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644))   # an empty file is a new database
+                path = p
+                break
+            except FileExistsError:
+                continue
+            except OSError as exc:
+                raise LogError(f"log {p}: cannot create it ({exc.strerror or exc})") from None
+        else:
             raise LogError(f"log {path}: already exists; choose another --log")
-        path.parent.mkdir(parents=True, exist_ok=True)
         conn = sqlite3.connect(str(path), check_same_thread=False)
         conn.execute("PRAGMA journal_mode=WAL")
         conn.execute("PRAGMA synchronous=FULL")  # fsync each commit: a power cut loses at most one flush

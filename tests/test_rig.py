@@ -98,3 +98,14 @@ def test_every_example_rig_file_is_valid(path, tmp_path):
         overrides = [f"detector.log={small}"]
     rig = load_rig(path, overrides)
     assert rig["sweep"]["step"] > 0
+
+
+def test_an_error_from_a_set_item_names_it():
+    # the file is fine; the user's --set item is what to fix
+    with pytest.raises(RigError, match=r"unknown key .*given by --set sweep.pases=3"):
+        load_rig(None, ["sweep.pases=3"])
+    with pytest.raises(RigError, match=r"must be an integer.*given by --set sweep.passes=x"):
+        load_rig(None, ["sweep.passes=x"])
+    with pytest.raises(RigError) as exc:
+        parse_rig("[sweep]\nstart = 0\nstop = 10\nstep = 1\npases = 2\n")
+    assert "--set" not in str(exc.value)

@@ -1,11 +1,16 @@
 """Run log round trip through real SQLite, and refusal of files that are not logs."""
 import sqlite3
+import subprocess
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
 
-from daq.rig import parse_rig
+from daq.rig import load_rig, parse_rig
 from daq.runlog import LogError, RunLog
+
+ROOT = Path(__file__).resolve().parent.parent
 
 RIG = "[sweep]\nstart = 0\nstop = 100\nstep = 1\n"
 
@@ -134,3 +139,27 @@ def test_float_codec_is_bit_exact_for_awkward_values():
     a = np.array([0.0, -0.0, np.inf, -np.inf, 5e-324, 1.7976931348623157e308, np.nan, 1 / 3])
     back = _unpack_float(_pack_float(a), a.size)
     assert back.tobytes() == a.tobytes()
+
+
+def test_default_names_never_collide(tmp_path):
+    # Two runs started in the same second under the default name: the second takes NAME-2.db
+    # (claimed with O_EXCL, so even two processes racing cannot share a file).
+    from daq.runlog import default_log_path
+    rig = load_rig(None)
+    base = default_log_path(tmp_path)
+    a = RunLog.create(base, rig, unique=True)
+    b = RunLog.create(base, rig, unique=True)
+    assert a.path == base and b.path == base.with_name(base.stem + "-2.db")
+    a.close()
+    b.close()
+    with pytest.raises(LogError, match="already exists"):      # a name the user gave is never changed
+        RunLog.create(base, rig)
+
+
+def test_a_log_that_cannot_be_made_is_bad_input_not_a_crash(tmp_path):
+    (tmp_path / "afile").write_text("")
+    with pytest.raises(LogError, match="cannot make its folder"):
+        RunLog.create(tmp_path / "afile" / "x.db", load_rig(None))
+    r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--log", str(tmp_path / "afile" / "x.db")],
+                       cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "cannot make its folder" in r.stderr and "Traceback" not in r.stderr
