@@ -1284,7 +1284,7 @@ class StreamCounter:
                 "height": h[sel], "width_steps": w[sel]}
 
     def estimate(self) -> dict:
-        """modes, crossings, spacing_steps (+ _u) and backlash_steps from the mode table.
+        """modes, crossings, spacing_steps (+ _u) at centre_steps, and backlash_steps from the mode table.
 
         Cheap (one small least-squares fit over the modes, cached until the
         next crossing), so a dashboard can call it several times a second.
@@ -1292,17 +1292,35 @@ class StreamCounter:
         self._flush()
         key = (self._n_cross, None if self._P is None else self._P["k"])
         if self._est_cache is not None and self._est_cache[0] == key:
-            return dict(self._est_cache[1])
+            return dict(self._est_cache[1], warming_up=self.warming_up())
         mc = self.mode_centres()
         backlash, mech = mechanical_centres(mc)
         ok = np.isfinite(mech)
-        sp, su, _ = fit_spacing(mc["mode"][ok], mech[ok], mc["n_up"][ok] + mc["n_down"][ok])
+        sp, su, fit = fit_spacing(mc["mode"][ok], mech[ok], mc["n_up"][ok] + mc["n_down"][ok])
         if sp is None and self._S:
             sp = self._S
+        # the spacing in steps changes across a sweep (Littrow tuning, dispersion): it is
+        # the fit's at centre_steps, the middle of the modes seen so far
         out = {"modes": self.modes, "crossings": self.crossings,
-               "spacing_steps": sp, "spacing_steps_u": su, "backlash_steps": backlash}
+               "spacing_steps": sp, "spacing_steps_u": su, "backlash_steps": backlash,
+               "centre_steps": fit.get("centre_steps")}
         self._est_cache = (key, out)
-        return dict(out)
+        return dict(out, warming_up=self.warming_up())
+
+    def warming_up(self) -> str | None:
+        """What the count waits for, in a few words (None once counting):
+        the count stays 0 until the noise level and then the spacing are known, and
+        holds still after the first turn until the backlash is fitted."""
+        if self._finished:
+            return None
+        if self._sigma is None:
+            return f"noise level, {min(self._n, INIT_NOISE)}/{INIT_NOISE} samples"
+        if self._phase == "init":
+            held = sum(obj["pos"].size for kind, obj in self._held if kind == "c")
+            return f"spacing, {held} blips held"
+        if self._phase == "align":
+            return "backlash, fitted after the turn"
+        return None
 
     def crossing_table(self) -> dict[str, np.ndarray]:
         """Every finalised crossing since this counter was made (or restored), as columns."""

@@ -101,7 +101,7 @@ def _calibration_view(sections):
         from analysis.physics import live_calibration
     except ImportError:
         return None
-    return lambda sp, u: live_calibration(sp, u, sections)
+    return lambda sp, u, centre_steps=None: live_calibration(sp, u, sections, centre_steps)
 
 
 def run(args) -> int:

@@ -38,6 +38,7 @@ COUNT_STYLE = "bold gold1"
 LABEL_STYLE = "grey62"
 TRACE_STYLE = "spring_green3"
 BLIP_STYLE = "bold orange_red1"
+WARN_STYLE = "yellow"
 
 
 def big_number(n: int | None) -> Text:
@@ -112,7 +113,8 @@ def render(st: LiveState, width: int = 80) -> Panel:
     from rich.text import Text
     est = st.estimate or {}
     spacing, spacing_u = est.get("spacing_steps"), est.get("spacing_steps_u")
-    calib = st.calib(spacing, spacing_u) if (st.calib and spacing) else None
+    # converted where it was measured (the middle of the modes so far), not mid-sweep
+    calib = st.calib(spacing, spacing_u, est.get("centre_steps")) if (st.calib and spacing) else None
 
     left = Table.grid()
     left.add_row(Text("modes counted", style=LABEL_STYLE))
@@ -122,6 +124,8 @@ def render(st: LiveState, width: int = 80) -> Panel:
     right = Table.grid(padding=(0, 1))
     right.add_column(style=LABEL_STYLE, no_wrap=True)
     right.add_column(no_wrap=True)
+    if est.get("warming_up"):       # a 0 that is not a count yet
+        right.add_row("warming up", Text(est["warming_up"], style=WARN_STYLE))
     right.add_row("spacing", f"{_fmt_u(spacing, spacing_u)} steps")
     if calib:
         right.add_row("", f"{_fmt_u(calib['spacing_nm'], calib['spacing_nm_u'], 4)} nm"
@@ -129,7 +133,7 @@ def render(st: LiveState, width: int = 80) -> Panel:
         right.add_row("chip length", f"{_fmt_u(calib['length_um'], calib['length_um_u'], 0)} µm")
     bl = est.get("backlash_steps")
     if bl is not None:
-        right.add_row("backlash", f"{bl:.1f} steps")
+        right.add_row("backlash", f"{0.0 if abs(bl) < 0.05 else bl:.1f} steps")   # never "-0.0"
     arrow = "↑ up" if st.direction > 0 else "↓ down"
     right.add_row("position", f"{st.position_steps} steps  {arrow}  pass {st.pass_index + 1}/{st.passes}")
     right.add_row("progress", f"{st.samples}/{st.total_samples} samples  {st.rate_per_s():.0f}/s  "
@@ -197,7 +201,8 @@ class PlainView:
         spacing = f"{sp:.2f} steps" if sp else "…"
         return (f"modetick: pass {st.pass_index + 1}/{st.passes} pos {st.position_steps} "
                 f"samples {st.samples}/{st.total_samples} modes {est.get('modes', 0)} "
-                f"spacing {spacing} left {_clock(time_left_s(st))}")
+                f"spacing {spacing} left {_clock(time_left_s(st))}"
+                + (f" (warming up: {est['warming_up']})" if est.get("warming_up") else ""))
 
     def _loop(self) -> None:
         while not self._stop.wait(self.every_s):

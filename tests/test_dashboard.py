@@ -49,7 +49,7 @@ def test_blips_are_marked_under_the_trace():
 
 
 def test_calibrated_view_shows_nm_and_length():
-    st = _state(calib=lambda sp, u: {"spacing_nm": 0.1524, "spacing_nm_u": 0.0021,
+    st = _state(calib=lambda sp, u, centre_steps=None: {"spacing_nm": 0.1524, "spacing_nm_u": 0.0021,
                                      "wavelength_nm": 936.3, "length_um": 801.0, "length_um_u": 12.0})
     text = _screen(st)
     assert "0.1524 ± 0.0021 nm" in text and "936.30 nm" in text
@@ -76,3 +76,20 @@ def test_sparkline_extremes():
 def test_plain_line():
     line = PlainView(_state()).line()
     assert "modes 47" in line and "pass 1/2" in line and "2000/8000" in line
+
+
+def test_a_count_not_started_yet_says_why():
+    # Before the counter knows the noise level and the spacing, its 0 is not a count: the
+    # dashboard and the plain progress line say what it is waiting for, from the counter itself.
+    import numpy as np
+    from analysis.counter import StreamCounter
+    c = StreamCounter()
+    rng = np.random.default_rng(1)
+    c.feed(np.arange(1000), np.ones(1000, np.int8), 1.0 + 0.01 * rng.standard_normal(1000))
+    est = c.estimate()
+    assert est["modes"] == 0 and est["warming_up"] == "noise level, 1000/2048 samples"
+    st = _state(estimate=est)
+    screen = _screen(st)
+    assert "warming up noise level, 1000/2048 samples" in " ".join(screen.split())
+    assert "(warming up: noise level, 1000/2048 samples)" in PlainView(st).line()
+    assert "warming up" not in _screen(_state())

@@ -46,3 +46,30 @@ def test_live_count_matches_truth(name):
     est = counter.estimate()
     assert abs(counter.modes - truth["modes"]) <= 1, (counter.modes, truth["modes"])
     assert est["spacing_steps"] == pytest.approx(truth["spacing_steps"], rel=0.005)
+
+
+def test_live_chip_length_holds_through_the_first_pass():
+    # The live spacing is the fit's at the middle of the modes seen so far, which moves
+    # along the first pass (the spacing in steps changes across a sweep: Littrow tuning
+    # goes as cos(theta)); converted there, the live chip length stays the simulator's
+    # true length (scaled by its true group index over the rig's, which the analysis uses)
+    # from early in the first pass on.
+    from analysis.counter import StreamCounter
+    from analysis.physics import live_calibration
+    from daq.rig import load_rig
+    from sims.instruments import SimBench
+    from sims.trace import simulate_trace
+    rig = load_rig(None)
+    truth = SimBench(rig.sections).truth()
+    want = truth["length_um"] * truth["group_index"] / rig["chip"]["group_index"]
+    tr = simulate_trace(rig.sections)
+    c = StreamCounter(rig["counter"])
+    seen = []
+    for a in range(0, tr.value.size, 256):
+        c.feed(tr.position_steps[a:a + 256], tr.direction[a:a + 256], tr.value[a:a + 256])
+        e = c.estimate()
+        if e["modes"] >= 20 and e["spacing_steps"]:
+            cal = live_calibration(e["spacing_steps"], e["spacing_steps_u"], rig.sections, e["centre_steps"])
+            seen.append(cal["length_um"])
+    assert len(seen) > 10
+    assert max(abs(L / want - 1) for L in seen) < 0.004
