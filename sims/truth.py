@@ -11,9 +11,11 @@ Rule for ``modes``: chip mode q counts when
      noise standard deviation of one sample (white, 1/f and quantization;
      spikes are outliers and do not count).
 Mode centres are for the ideal mount moving up at the start temperature, in
-steps; ``spacing_steps`` is the least-squares slope of centre against mode
-index (the mean spacing over the sweep), ``spacing_nm`` is lambda^2/(2 n_g L)
-at the centre of the swept range.
+steps; ``spacing_steps`` is the local spacing at the middle detectable mode
+(what the analysis states: the spacing in steps changes along a sweep),
+``spacing_steps_mean`` the least-squares slope of centre against mode index
+(the mean over the sweep), ``spacing_nm`` is lambda^2/(2 n_g L) at the centre
+of the swept range.
 """
 from __future__ import annotations
 
@@ -94,16 +96,22 @@ def compute_truth(model: SimModel) -> dict:
     idx = np.argsort(centres[detectable])
     found = centres[detectable][idx]
     found_q = orders[detectable][idx]
-    if found.size >= 2:
-        spacing_steps = float(abs(np.polyfit(np.arange(found.size), found, 1)[0]))
+    spacing_mean = float(abs(np.polyfit(np.arange(found.size), found, 1)[0])) if found.size >= 2 else fsr_steps_c
+    if found.size >= 3:
+        # the local spacing at the middle of the detectable modes (a central difference of
+        # the true centres): the spacing in steps changes along a sweep, and this is the
+        # place a fit of centre against mode number states it for
+        m = found.size // 2
+        spacing_steps = float(abs(found[m + 1] - found[m - 1]) / 2 if found.size % 2 else abs(found[m] - found[m - 1]))
     else:
-        spacing_steps = fsr_steps_c
+        spacing_steps = spacing_mean
     return {
         "scenario": p["scenario"],
         "seed": p["seed"],
         "modes": int(detectable.sum()),
         "modes_crossed": int(crossed.sum()),
         "spacing_steps": spacing_steps,
+        "spacing_steps_mean": spacing_mean,
         "spacing_steps_at_centre": fsr_steps_c,
         "spacing_nm": spacing_nm,
         "length_um": p["chip_length_um"],

@@ -73,3 +73,30 @@ def test_live_chip_length_holds_through_the_first_pass():
             seen.append(cal["length_um"])
     assert len(seen) > 10
     assert max(abs(L / want - 1) for L in seen) < 0.004
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+@pytest.mark.parametrize("scenario", ["clean", "noisy", "backlash", "kicks", "split", "drift", "clipped",
+                                      "narrowgain", "lever", "rough"])
+def test_spacing_uncertainty_is_honest_against_the_simulators_truth(scenario, seed):
+    # The stated standard uncertainty against the simulator's true mode centres: the true
+    # local spacing at the fit's centre (the slope of a quadratic through the eleven true
+    # centres around it, numpy's polyfit; the true centres are those of the mount moving
+    # up, so the place is the fit's mechanical centre plus half the backlash) lies within
+    # 3 u; under drift, whose u rests on the scatter of two passes (one degree of
+    # freedom), within the stated 95 % expanded uncertainty k95 * u (Student's t).
+    from analysis.pipeline import analyze_trace
+    from daq.rig import load_rig
+    from sims.instruments import SimBench
+    from sims.trace import simulate_trace
+    rig = load_rig(None, [f'sim.scenario="{scenario}"', f"sim.seed={seed}", "sweep.passes=2"])
+    tr = simulate_trace(rig.sections)
+    truth = SimBench(rig.sections).truth()
+    r = analyze_trace(tr.position_steps, tr.value, tr.direction, tr.pass_index, rig.sections, rig["counter"])
+    c = np.asarray(truth["mode_centres_steps"])
+    at = r["fit"]["centre_steps"] + 0.5 * (r["backlash_steps"] or 0.0)
+    m = int(np.clip(np.searchsorted(c, at), 5, c.size - 6))
+    coef = np.polyfit(c[m - 5:m + 6] - at, np.arange(-5.0, 6.0), 2)   # mode number against position
+    local = 1.0 / coef[-2]                                            # steps per mode at `at`
+    k = r["spacing_steps_k95"] if scenario == "drift" else 3.0
+    assert abs(r["spacing_steps"] - local) <= k * r["spacing_steps_u"]
