@@ -112,34 +112,58 @@ def chain_inputs(cal: Calibration, spacing_steps: float, spacing_u: float, centr
     ]
 
 
+C_M_PER_S = 299_792_458.0   # speed of light in vacuum (SI, exact)
+
+
+def spacing_ghz(spacing_nm: float, wavelength_nm: float) -> float:
+    """Mode spacing in frequency: delta_nu = c * delta_lambda / lambda^2, in GHz (with both
+    wavelengths in air, as the grating gives them, this is high by n_air - 1 ~ 2.7e-4)."""
+    return C_M_PER_S * spacing_nm / wavelength_nm ** 2
+
+
+def calibrated_figures(cal: Calibration, spacing_steps: float, spacing_u: float, centre_steps: float,
+                       group_index: float | None, group_index_u: float = 0.0) -> dict:
+    """Spacing in nm and GHz, wavelength and chip length at centre_steps, each with its
+    GUM uncertainty from every input (the angle offset and the groove density too: at high
+    Littrow angles they weigh as much as the spacing), and the length's budget."""
+    from analysis.uncertainty import gum
+    order = cal.order
+    inputs = chain_inputs(cal, spacing_steps, spacing_u, centre_steps,
+                          float(group_index) if group_index else 1.0, group_index_u)
+
+    def nm(sp, c, k, a0, lpm, g):
+        return spacing_nm_at(sp, c, k, a0, lpm, order)[0]
+
+    def lam(sp, c, k, a0, lpm, g):
+        return littrow_wavelength_nm(a0 + k * c, lpm, order)
+
+    def ghz(*x):
+        return spacing_ghz(nm(*x), lam(*x))
+
+    out = {}
+    for key, f in (("spacing_nm", nm), ("wavelength_nm", lam), ("spacing_ghz", ghz)):
+        y, u, _ = gum(f, inputs)
+        out[key], out[f"{key}_u"] = float(y), u
+    out["length_um"] = out["length_um_u"] = out["budget"] = None
+    if group_index:
+        L, L_u, budget = gum(lambda *x: length_from_steps(*x, order), inputs)
+        out.update(length_um=float(L), length_um_u=L_u, budget=budget)
+    return out
+
+
 def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None, sections: dict,
                      centre_steps: float | None = None) -> dict | None:
-    """Spacing in nm, wavelength and chip length for the dashboard and the counter's own
-    summary, with GUM uncertainties from every calibration input (the angle offset and
-    the groove density too: at high Littrow angles they weigh as much as the spacing).
-
-    The offline analysis adds the Monte Carlo check and the budget.
-    """
-    from analysis.uncertainty import gum
+    """calibrated_figures for the dashboard and the counter's own summary, from a rig's
+    sections (None when uncalibrated); the offline analysis adds the Monte Carlo check."""
     cal = Calibration.from_sections(sections)
     if cal is None or not spacing_steps:
         return None
-    sw = sections.get("sweep", {})
     if centre_steps is None:
+        sw = sections.get("sweep", {})
         centre_steps = 0.5 * (sw.get("start", 0) + sw.get("stop", 0))
-    order = cal.order
     chip = sections.get("chip", {})
-    ng = chip.get("group_index")
-    inputs = chain_inputs(cal, spacing_steps, spacing_steps_u or 0.0, centre_steps,
-                          float(ng) if ng else 1.0, float(chip.get("group_index_u") or 0.0))
-    sp_nm, sp_nm_u, _ = gum(lambda sp, c, k, a0, lpm, g: spacing_nm_at(sp, c, k, a0, lpm, order)[0], inputs)
-    lam, lam_u, _ = gum(lambda sp, c, k, a0, lpm, g: littrow_wavelength_nm(a0 + k * c, lpm, order), inputs)
-    out = {"spacing_nm": float(sp_nm), "spacing_nm_u": sp_nm_u, "wavelength_nm": float(lam),
-           "wavelength_nm_u": lam_u, "length_um": None, "length_um_u": None}
-    if ng:
-        L, L_u, _ = gum(lambda *x: length_from_steps(*x, order), inputs)
-        out["length_um"], out["length_um_u"] = float(L), L_u
-    return out
+    return calibrated_figures(cal, spacing_steps, spacing_steps_u or 0.0, centre_steps,
+                              chip.get("group_index"), float(chip.get("group_index_u") or 0.0))
 
 
 def length_by_count(n_modes: int, span_nm: float, wavelength_nm: float, group_index: float,

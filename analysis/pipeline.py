@@ -24,7 +24,7 @@ import numpy as np
 from analysis import physics
 from analysis.counter import StreamCounter
 from analysis.modefit import fit_spacing, mechanical_centres
-from analysis.uncertainty import gum, monte_carlo
+from analysis.uncertainty import monte_carlo
 
 FEED_CHUNK = 65536
 
@@ -162,31 +162,15 @@ def per_pass_results(ct: dict, pass_of_index: np.ndarray, fit: dict | None = Non
 
 def calibrated_results(cal: physics.Calibration, chip: dict, spacing_steps: float, spacing_u: float,
                        centre_steps: float, mc_draws: int = 100_000) -> dict:
-    order = cal.order
-
-    def spacing_nm_f(sp, c, k, a0, lpm, ng):
-        return physics.spacing_nm_at(sp, c, k, a0, lpm, order)[0]
-
-    def length_f(sp, c, k, a0, lpm, ng):
-        return physics.length_from_steps(sp, c, k, a0, lpm, ng, order)
-
-    sp_nm, lam = (float(v) for v in physics.spacing_nm_at(spacing_steps, centre_steps, cal.deg_per_step,
-                                                          cal.angle_at_zero_deg, cal.lines_per_mm, order))
+    """physics.calibrated_figures, with the chip length checked by Monte Carlo (JCGM 101)."""
     chip = chip or {}
-    ng = chip.get("group_index")
-    ng_in = ng if ng else 1.0
-    inputs = physics.chain_inputs(cal, spacing_steps, spacing_u, centre_steps, float(ng_in),
-                                  float(chip.get("group_index_u") or 0.0))
-    _, sp_nm_u, _ = gum(spacing_nm_f, inputs)
-    out: dict[str, Any] = {"spacing_nm": sp_nm, "spacing_nm_u": sp_nm_u, "wavelength_nm": lam,
-                           "length_um": None, "length_um_u": None, "budget": None}
-    # wavelength uncertainty at the centre (angle offset and groove density)
-    lam_f = lambda sp, c, k, a0, lpm, g: physics.littrow_wavelength_nm(a0 + k * c, lpm, order)  # noqa: E731
-    out["wavelength_nm_u"] = gum(lam_f, inputs)[1]
+    ng, ng_u = chip.get("group_index"), float(chip.get("group_index_u") or 0.0)
+    out: dict[str, Any] = physics.calibrated_figures(cal, spacing_steps, spacing_u, centre_steps, ng, ng_u)
     if ng:
-        L, L_u, budget = gum(length_f, inputs)
-        mc = monte_carlo(length_f, inputs, draws=mc_draws)   # the same chain, on arrays
-        out.update(length_um=L, length_um_u=L_u, budget=budget, length_um_monte_carlo=mc)
+        order = cal.order
+        inputs = physics.chain_inputs(cal, spacing_steps, spacing_u, centre_steps, float(ng), ng_u)
+        out["length_um_monte_carlo"] = monte_carlo(      # the same chain, on arrays
+            lambda *x: physics.length_from_steps(*x, order), inputs, draws=mc_draws)
     return out
 
 

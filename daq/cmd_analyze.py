@@ -103,6 +103,7 @@ def run(args) -> int:
 def print_result(result: dict) -> None:
     from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
     con = Console()
     t = Table(title="modetick analyze", show_header=False)
     t.add_column(style="grey62")
@@ -128,4 +129,4 @@ def print_result(result: dict) -> None:
     for gap in result.get("gaps") or []:
         con.print(f"[yellow]gap:[/] {gap}")
     for note in result.get("notes") or []:
-        con.print(f"[yellow]note:[/] {note}")
+        con.print(Text("note: ", style="yellow") + Text(note))

@@ -33,6 +33,7 @@ class SignalStop:
 
     def __init__(self, state):
         self.signum: int | None = None
+        self.by_key = False          # stopped with the dashboard's q key, not a signal
         self.state = state
         self._old = {}
 
@@ -49,7 +50,7 @@ class SignalStop:
 
     def request(self) -> None:
         if self.signum is None:
-            self.signum = signal.SIGINT
+            self.signum, self.by_key = signal.SIGINT, True     # exits as Ctrl-C does (130)
             self.state.status = "stopping"
 
     def __enter__(self):
@@ -187,9 +188,11 @@ def run(args) -> int:
                     status = engine.run(skip)
             else:
                 status = engine.run(skip)
+            state.status = status          # the dashboard's last frame says how it ended
         if status == "stopped":
             code = EXIT_FOR_SIGNAL.get(stopper.signum, 130)
-            reason = f"stopped by {signal.Signals(stopper.signum).name}"
+            reason = ("stopped with the q key" if stopper.by_key
+                      else f"stopped by {signal.Signals(stopper.signum).name}")
     except KeyboardInterrupt:
         status, reason, code = "aborted", "aborted by a second interrupt", 130
     except DeviceError as exc:
@@ -272,17 +275,18 @@ def _safe_stop(stage, detector) -> None:
 def _print_table(summary: dict) -> None:
     from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
+
+    from daq.summary import summary_rows
     t = Table(title="modetick sweep", show_header=False)
-    t.add_column(style="grey62")
+    t.add_column(style="grey62", no_wrap=True)
     t.add_column()
-    for k, v in summary.items():
-        if isinstance(v, (dict, list)):
-            continue
-        t.add_row(k, f"{v:.6g}" if isinstance(v, float) else str(v))
-    if "truth" in summary:
-        t.add_row("truth (sim)", ", ".join(f"{k} {v:.6g}" if isinstance(v, float) else f"{k} {v}"
-                                            for k, v in summary["truth"].items() if v is not None))
+    for label, value in summary_rows(summary):
+        t.add_row(label, Text(value))          # plain text: "[chip] group_index" is not markup
     con = Console(stderr=False)
     con.print(t)
     for note in summary.get("notes") or []:
-        con.print(f"[yellow]note:[/] {note}")
+        con.print(Text("note: ", style="yellow") + Text(note))
+    if summary.get("status") in ("stopped", "aborted", "faulted"):
+        con.print(f"to go on: modetick sweep --resume {summary.get('log', 'LOG')}")
+    con.print("every figure, the budget and the mode map: --json, modetick analyze / report / modes")

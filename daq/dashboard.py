@@ -157,7 +157,7 @@ def render(st: LiveState, width: int = 80) -> Panel:
         ev.append("PAUSED: press p to go on\n", style="bold yellow")
 
     footer = Text(f"log {st.log_path}   p pause/resume · q stop", style=LABEL_STYLE)
-    title = f"{st.title} · {st.status}"
+    title = f"{st.title} · {'paused' if st.paused else st.status}"
     return Panel(Group(top, Text(""), Text(trace, style=TRACE_STYLE), Text(marker, style=BLIP_STYLE),
                        ev, footer), title=title, title_align="left",
                  border_style="grey50", width=min(width, 120))

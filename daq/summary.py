@@ -8,7 +8,8 @@ from daq.runlog import RunLog
 
 # Keys every summary carries, whether or not the rig is calibrated.
 CORE_KEYS = ("modes", "crossings", "spacing_steps", "spacing_steps_u", "samples", "status", "log")
-CALIBRATED_KEYS = ("spacing_nm", "spacing_nm_u", "wavelength_nm", "length_um", "length_um_u")
+CALIBRATED_KEYS = ("spacing_nm", "spacing_nm_u", "wavelength_nm", "wavelength_nm_u", "spacing_ghz",
+                   "spacing_ghz_u", "length_um", "length_um_u")
 
 
 def json_ready(x: Any) -> Any:
@@ -84,3 +85,44 @@ def build_summary(log: RunLog, sections: dict, status: str, counter=None, bench=
     ordered = {k: out[k] for k in CORE_KEYS + CALIBRATED_KEYS if k in out}
     ordered.update({k: v for k, v in out.items() if k not in ordered})
     return json_ready(ordered)
+
+
+def _pm(v, u, digits: int | None = None) -> str:
+    """v ± u with u to two significant figures and v to the same decimal place."""
+    if v is None:
+        return "…"
+    if not u or not math.isfinite(u):
+        return f"{v:.6g}"
+    d = digits if digits is not None else max(0, 1 - int(math.floor(math.log10(abs(u)))))
+    return f"{v:.{d}f} ± {u:.{d}f}"
+
+
+def summary_rows(s: dict) -> list[tuple[str, str]]:
+    """The end-of-run summary for a person: (label, value with units and ± u) rows; the
+    full record is the JSON (--json) and the log."""
+    rows = [("status", s.get("status", "?") + (f" ({s['reason']})" if s.get("reason") else "")),
+            ("modes counted", f"{s.get('modes', 0)}   ({s.get('crossings', 0)} blips seen)")]
+    sp = s.get("spacing_steps")
+    if sp is not None:
+        k95 = s.get("spacing_steps_k95")
+        rows.append(("mode spacing", f"{_pm(sp, s.get('spacing_steps_u'))} steps"
+                     + (f"   (95 %: k = {k95:.2f})" if k95 else "")))
+    if s.get("spacing_nm") is not None:
+        rows.append(("", f"{_pm(s['spacing_nm'], s.get('spacing_nm_u'))} nm   "
+                         f"{_pm(s.get('spacing_ghz'), s.get('spacing_ghz_u'))} GHz"))
+        rows.append(("wavelength", f"{_pm(s['wavelength_nm'], s.get('wavelength_nm_u'))} nm"))
+    if s.get("length_um") is not None:
+        top = (s.get("budget") or [{}])[0]
+        share = f"   (mostly {top['input']}, {100 * top['share']:.0f} % of u²)" if top.get("input") else ""
+        rows.append(("chip length", f"{_pm(s['length_um'], s.get('length_um_u'))} µm{share}"))
+    if s.get("backlash_steps") is not None:
+        b = s["backlash_steps"]
+        rows.append(("backlash", f"{0.0 if abs(b) < 0.05 else b:.1f} steps"))
+    rows.append(("samples", f"{s.get('samples', 0)}   log {s.get('log', '')}"))
+    t = s.get("truth")
+    if t:
+        rows.append(("truth (sim)", ", ".join(
+            f"{label} {t[k]:.6g}{unit}" for k, label, unit in (
+                ("modes", "modes", ""), ("spacing_steps", "spacing", " steps"),
+                ("length_um", "length", " µm"), ("group_index", "n_g", "")) if t.get(k) is not None)))
+    return rows

@@ -187,3 +187,14 @@ def test_stop_then_resume_logs_every_event_once(tmp_path):
     assert rep.returncode == 0, rep.stderr
     ch = json.loads(rep.stdout)["changes"]
     assert ch["identical"], ch
+
+
+def test_a_stopped_run_says_how_to_go_on(tmp_path):
+    log = tmp_path / "plain.db"
+    proc = _sweep("--log", str(log), "--plain", "--set", PACE)
+    _wait_for_samples(log, 1000, proc)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130, err
+    assert f"to go on: modetick sweep --resume {log}" in " ".join(out.split())
+    assert "modes counted" in out and "status" in out

@@ -116,6 +116,11 @@ def test_live_figures_carry_every_calibration_input(stage, grating, centre, spac
     assert live["wavelength_nm_u"] == pytest.approx(lam.std_dev, rel=1e-3)
     assert live["length_um"] == pytest.approx(L.nominal_value, rel=1e-9)
     assert live["length_um_u"] == pytest.approx(L.std_dev, rel=1e-3)
+    # in frequency: delta_nu = c delta_lambda / lambda^2 = c / (2 n_g L) (Coldren et al.)
+    c_si = 299_792_458.0
+    assert live["spacing_ghz"] == pytest.approx(c_si / (2 * 3.7 * live["length_um"] * 1e-6) / 1e9, rel=1e-9)
+    nu = c_si * dl / lam ** 2                       # nm / nm^2 * m/s = GHz
+    assert live["spacing_ghz_u"] == pytest.approx(nu.std_dev, rel=1e-3)
 
 
 @pytest.mark.parametrize("stage,grating,centre,spacing", HIGH_ANGLE_RIGS)

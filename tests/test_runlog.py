@@ -163,3 +163,19 @@ def test_a_log_that_cannot_be_made_is_bad_input_not_a_crash(tmp_path):
     r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--log", str(tmp_path / "afile" / "x.db")],
                        cwd=ROOT, capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "cannot make its folder" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_end_of_run_summary_reads_with_units_and_rounded_uncertainties():
+    # GUM 7.2.6 (common practice): an uncertainty to at most two significant digits, the
+    # value to the same decimal place.
+    from daq.summary import _pm, summary_rows
+    assert _pm(801.402, 13.6833) == "801 ± 14"
+    assert _pm(45.5727123, 0.000114779) == "45.57271 ± 0.00011"
+    assert _pm(0.151036, 0.00150053) == "0.1510 ± 0.0015"
+    rows = dict(summary_rows({"status": "stopped", "reason": "stopped by the q key", "modes": 40,
+                              "crossings": 41, "spacing_steps": 45.6, "spacing_steps_u": 0.01,
+                              "length_um": 801.4, "length_um_u": 13.7, "samples": 9, "log": "x.db",
+                              "budget": [{"input": "[chip] group_index", "share": 0.654}]}))
+    assert rows["status"] == "stopped (stopped by the q key)"
+    assert rows["modes counted"].startswith("40") and "41 blips" in rows["modes counted"]
+    assert rows["chip length"] == "801 ± 14 µm   (mostly [chip] group_index, 65 % of u²)"

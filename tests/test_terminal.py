@@ -41,7 +41,7 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
         while time.time() < deadline and "PAUSED" not in screen:
             time.sleep(0.3)
             screen = _tmux("capture-pane", "-p", "-t", session).stdout
-        assert "PAUSED" in screen, screen
+        assert "PAUSED" in screen and "· paused" in screen, screen
         def progress(text: str) -> int:     # -1 while the pane is caught mid-redraw
             m = re.search(r"(\d+)/\d+ samples", text)
             return int(m.group(1)) if m else -1
@@ -71,7 +71,7 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
         while time.time() < deadline:
             time.sleep(0.3)
             screen = _tmux("capture-pane", "-p", "-t", session).stdout
-            if "PAUSED" not in screen and progress(screen) > first:
+            if "PAUSED" not in screen and "· running" in screen and progress(screen) > first:
                 break
         assert "PAUSED" not in screen and progress(screen) > first, screen
         # The q key stops the run cleanly after the current step: exit 130, log kept.
@@ -86,3 +86,4 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
     from daq.runlog import RunLog
     lg = RunLog.open(log)
     assert lg.meta("status") == "stopped" and lg.n_samples > 0
+    assert lg.meta("reason") == "stopped with the q key"
