@@ -28,8 +28,8 @@ def load_input(path: str, config: str | None, overrides: list[str]):
         raise LogError(f"{p}: no such file")
     with open(p, "rb") as fh:
         head = fh.read(16)
-    if head.startswith(b"SQLite format 3"):
-        log = RunLog.open(p)
+    if head.startswith(b"SQLite format 3") or p.suffix.lower() == ".db":
+        log = RunLog.open(p)       # a .db that is no SQLite file is a bad log, not a CSV
         rig = load_rig(config, overrides) if config else log_rig(log, overrides)
         s = log.read_samples()
         cols = (s.position_steps, s.value, s.direction, s.pass_index)

@@ -33,11 +33,25 @@ def configure(p) -> None:
     p.add_argument("--plain", action="store_true", help="plain progress lines even on a terminal")
 
 
+# What a replay of logged samples can change: the counter, and the calibration the
+# figures in nm and the chip length come from; the rest (sweep, devices, limits) made
+# the samples and is fixed by them.
+REPLAY_SECTIONS = ("counter", "chip", "grating")
+REPLAY_STAGE_KEYS = ("deg_per_step", "deg_per_step_u", "angle_at_zero_deg", "angle_at_zero_deg_u")
+
+
 def replay_rig(log: RunLog, overrides: list[str]):
     """The rig as logged, or re-read from its text with more overrides."""
     rig = log.rig()
     if not overrides:
         return rig
+    for item in overrides:
+        section, _, rest = item.partition(".")
+        key = rest.split("=", 1)[0].strip()
+        if section.strip() not in REPLAY_SECTIONS and not (section.strip() == "stage" and key in REPLAY_STAGE_KEYS):
+            raise RigError(str(log.path), f"--set {item}",
+                           "a replay re-reads the logged samples: only counter.*, chip.*, grating.* and the "
+                           "stage calibration (deg_per_step, angle_at_zero_deg and their _u) can change")
     if not rig.text:
         raise LogError(f"log {log.path}: holds no rig text to apply --set to")
     return parse_rig(rig.text, rig.source, rig.overrides + overrides)

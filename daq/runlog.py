@@ -214,7 +214,12 @@ class RunLog:
             conn = sqlite3.connect(uri, uri=True, check_same_thread=False)
             fmt = conn.execute("SELECT value FROM meta WHERE key='format'").fetchone()
         except sqlite3.DatabaseError as exc:
-            raise LogError(f"log {path}: not a modetick run log ({exc})") from None
+            with open(path, "rb") as fh:
+                is_sqlite = fh.read(16) == b"SQLite format 3\x00"
+            # an SQLite file that opens but has no meta table is some other database
+            damaged = is_sqlite and not isinstance(exc, sqlite3.OperationalError)
+            what = "a damaged run log (cut short or overwritten?)" if damaged else "not a modetick run log"
+            raise LogError(f"log {path}: {what} ({exc})") from None
         if not fmt or fmt[0] != FORMAT:
             conn.close()
             raise LogError(f"log {path}: not a modetick run log (no format marker)")

@@ -156,6 +156,8 @@ def test_interrupt_stops_a_paced_replay(tmp_path):
 @pytest.mark.parametrize("args, words", [
     (["--fast"], "not a modetick run log"),
     (["--fast", "--set", "counter.hi_sigmaa=3"], "hi_sigma"),
+    (["--fast", "--set", "stage.min_steps=3"], "a replay re-reads the logged samples"),
+    (["--fast", "--set", "sweep.passes=3"], "a replay re-reads the logged samples"),
 ])
 def test_bad_input_exits_2_with_one_line(tmp_path, narrow, args, words):
     target = narrow[0]
@@ -227,3 +229,24 @@ def test_a_log_without_counted_blips_is_replayed_without_a_list_of_gains(tmp_pat
     assert r.returncode == 0, r.stderr
     assert "holds no counted blips to compare with" in r.stdout and "gained" not in r.stdout
     assert f"{tr.value.size:,} samples in" in r.stdout
+
+
+def test_a_corrected_group_index_is_taken_by_a_replay(narrow):
+    # L = lambda^2 / (2 n_g delta_lambda) (Coldren et al.): the length goes as 1 / n_g.
+    path, live = narrow
+    out = _json(_cli("replay", path, "--fast", "--json", "--set", "chip.group_index=3.80"))
+    assert out["length_um"] == pytest.approx(live["length_um"] * 3.62 / 3.80, rel=1e-6)
+    assert out["modes"] == live["modes"]
+
+
+def test_a_damaged_log_is_called_damaged(narrow, tmp_path):
+    cut = tmp_path / "cut.db"
+    data = Path(narrow[0]).read_bytes()
+    cut.write_bytes(data[: len(data) // 2])
+    res = _cli("analyze", cut)
+    # (cut in half, a log may still open and fail on the first block read instead: damaged too)
+    assert res.returncode == 2 and "damaged" in res.stderr, res.stderr
+    txt = tmp_path / "notes.db"
+    txt.write_text("not a sqlite file\n")
+    res = _cli("analyze", txt)
+    assert res.returncode == 2 and "not a modetick run log" in res.stderr, res.stderr

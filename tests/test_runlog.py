@@ -62,11 +62,13 @@ def test_refuses_to_overwrite(tmp_path):
         RunLog.create(tmp_path / "a.db", parse_rig(RIG))
 
 
-@pytest.mark.parametrize("content", [b"", b"hello, not a database", b"SQLite format 3\x00" + b"\x00" * 50])
-def test_not_a_log(tmp_path, content):
+@pytest.mark.parametrize("content, words", [
+    (b"", "not a modetick run log"), (b"hello, not a database", "not a modetick run log"),
+    (b"SQLite format 3\x00" + b"\x00" * 50, "damaged")])      # SQLite's header, then nothing sound
+def test_not_a_log(tmp_path, content, words):
     p = tmp_path / "x.db"
     p.write_bytes(content)
-    with pytest.raises(LogError, match="not a modetick run log"):
+    with pytest.raises(LogError, match=words):
         RunLog.open(p)
 
 
