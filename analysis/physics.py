@@ -32,6 +32,14 @@ class Calibration:
     deg_per_step_u: float = 0.0
     angle_at_zero_deg_u: float = 0.0
     lines_per_mm_u: float = 0.0
+    moving: str = "up"          # the direction the stage moved when it was calibrated
+
+    def calibrated_position(self, mechanical_steps: float, backlash_steps: float | None) -> float:
+        """Where the stage reads, moving as it did when calibrated, at a mechanical centre
+        (the mean of up and down, mechanical_centres): half the backlash up or down."""
+        if not backlash_steps:
+            return mechanical_steps
+        return mechanical_steps + (0.5 if self.moving == "up" else -0.5) * backlash_steps
 
     @classmethod
     def from_sections(cls, sections: dict | None) -> "Calibration | None":
@@ -45,7 +53,7 @@ class Calibration:
         return cls(float(need[0]), float(need[1]), float(need[2]), int(g.get("order", 1) or 1),
                    float(st.get("deg_per_step_u", 0.0) or 0.0),
                    float(st.get("angle_at_zero_deg_u", 0.0) or 0.0),
-                   float(g.get("lines_per_mm_u", 0.0) or 0.0))
+                   float(g.get("lines_per_mm_u", 0.0) or 0.0), str(st.get("calibrated_moving") or "up"))
 
 
 def groove_spacing_nm(lines_per_mm: float) -> float:
@@ -152,15 +160,18 @@ def calibrated_figures(cal: Calibration, spacing_steps: float, spacing_u: float,
 
 
 def live_calibration(spacing_steps: float | None, spacing_steps_u: float | None, sections: dict,
-                     centre_steps: float | None = None) -> dict | None:
+                     centre_steps: float | None = None, backlash_steps: float | None = None) -> dict | None:
     """calibrated_figures for the dashboard and the counter's own summary, from a rig's
-    sections (None when uncalibrated); the offline analysis adds the Monte Carlo check."""
+    sections (None when uncalibrated), at the mechanical centre_steps (mid-sweep if None);
+    the offline analysis adds the Monte Carlo check."""
     cal = Calibration.from_sections(sections)
     if cal is None or not spacing_steps:
         return None
     if centre_steps is None:
         sw = sections.get("sweep", {})
         centre_steps = 0.5 * (sw.get("start", 0) + sw.get("stop", 0))
+    else:
+        centre_steps = cal.calibrated_position(centre_steps, backlash_steps)
     chip = sections.get("chip", {})
     return calibrated_figures(cal, spacing_steps, spacing_steps_u or 0.0, centre_steps,
                               chip.get("group_index"), float(chip.get("group_index_u") or 0.0))

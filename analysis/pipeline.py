@@ -242,12 +242,15 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
     cal = physics.Calibration.from_sections(sections)
     if spacing and cal is not None and centre is not None:
         chip = (sections or {}).get("chip", {})
-        res = calibrated_results(cal, chip, spacing, spacing_u or 0.0, centre)
+        # the calibration holds for the stage moving one way ([stage] calibrated_moving): the
+        # mechanical centres are half the backlash from where it reads moving that way
+        res = calibrated_results(cal, chip, spacing, spacing_u or 0.0, cal.calibrated_position(centre, backlash))
         result.update(res)
         for row in result["mode_map"]:
             cs = row["centre_steps"]
             row["wavelength_nm"] = None if cs is None else physics.littrow_wavelength_nm(
-                physics.angle_deg(cs, cal.deg_per_step, cal.angle_at_zero_deg), cal.lines_per_mm, cal.order)
+                physics.angle_deg(cal.calibrated_position(cs, backlash), cal.deg_per_step, cal.angle_at_zero_deg),
+                cal.lines_per_mm, cal.order)
     # The by-count route: N modes over the span their centres cover (no fit needed).
     # The span's uncertainty is that of its two end centres (the fit's residual scatter).
     if ok.sum() >= 2:

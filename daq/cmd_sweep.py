@@ -102,7 +102,8 @@ def _calibration_view(sections):
         from analysis.physics import live_calibration
     except ImportError:
         return None
-    return lambda sp, u, centre_steps=None: live_calibration(sp, u, sections, centre_steps)
+    return lambda sp, u, centre_steps=None, backlash_steps=None: live_calibration(
+        sp, u, sections, centre_steps, backlash_steps)
 
 
 def run(args) -> int:

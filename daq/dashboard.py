@@ -114,7 +114,8 @@ def render(st: LiveState, width: int = 80) -> Panel:
     est = st.estimate or {}
     spacing, spacing_u = est.get("spacing_steps"), est.get("spacing_steps_u")
     # converted where it was measured (the middle of the modes so far), not mid-sweep
-    calib = st.calib(spacing, spacing_u, est.get("centre_steps")) if (st.calib and spacing) else None
+    calib = (st.calib(spacing, spacing_u, est.get("centre_steps"), est.get("backlash_steps"))
+             if (st.calib and spacing) else None)
 
     left = Table.grid()
     left.add_row(Text("modes counted", style=LABEL_STYLE))

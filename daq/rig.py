@@ -31,6 +31,9 @@ CORE_SCHEMA: dict[str, dict[str, Any]] = {
         "deg_per_step_u": 0.0,
         "angle_at_zero_deg": (float, None),
         "angle_at_zero_deg_u": 0.0,
+        # The direction the stage moved when that calibration was taken ("up": increasing
+        # steps): with backlash, the angle at a reading depends on the way the stage came.
+        "calibrated_moving": "up",
         # Soft limits, checked before any move is sent.
         "min_steps": (int, None),
         "max_steps": (int, None),
@@ -195,6 +198,8 @@ def _validate_values(source: str, s: dict[str, dict[str, Any]]) -> None:
                      ("grating", "lines_per_mm_u"), ("chip", "group_index_u")):
         if s[sec][key] < 0:
             raise RigError(source, f"[{sec}] {key}", "an uncertainty must not be negative")
+    if st["calibrated_moving"] not in ("up", "down"):
+        raise RigError(source, "[stage] calibrated_moving", f"must be \"up\" or \"down\", got {st['calibrated_moving']!r}")
     if st["deg_per_step"] is not None and st["deg_per_step"] == 0:
         raise RigError(source, "[stage] deg_per_step", "must not be 0")
     # Per-package checks (e.g. counter thresholds) where a package offers them.

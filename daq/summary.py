@@ -33,7 +33,8 @@ def live_summary(log: RunLog, sections: dict, status: str, counter) -> dict:
     out = {"modes": counter.modes, "crossings": counter.crossings,
            "spacing_steps": est.get("spacing_steps"), "spacing_steps_u": est.get("spacing_steps_u"),
            "samples": log.n_samples, "status": status, "log": str(log.path)}
-    cal = live_calibration(out["spacing_steps"], out["spacing_steps_u"], sections, est.get("centre_steps"))
+    cal = live_calibration(out["spacing_steps"], out["spacing_steps_u"], sections, est.get("centre_steps"),
+                           est.get("backlash_steps"))
     if cal:
         out.update({k: cal.get(k) for k in CALIBRATED_KEYS if k in cal})
     if est.get("backlash_steps") is not None:

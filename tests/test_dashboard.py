@@ -49,7 +49,7 @@ def test_blips_are_marked_under_the_trace():
 
 
 def test_calibrated_view_shows_nm_and_length():
-    st = _state(calib=lambda sp, u, centre_steps=None: {"spacing_nm": 0.1524, "spacing_nm_u": 0.0021,
+    st = _state(calib=lambda sp, u, centre_steps=None, backlash_steps=None: {"spacing_nm": 0.1524, "spacing_nm_u": 0.0021,
                                      "wavelength_nm": 936.3, "length_um": 801.0, "length_um_u": 12.0})
     text = _screen(st)
     assert "0.1524 ± 0.0021 nm" in text and "936.30 nm" in text

@@ -69,9 +69,12 @@ def test_wavelengths_follow_the_grating_equation(logged, listed):
     st = load_rig(None, SWEEP)
     k, a0 = st["stage"]["deg_per_step"], st["stage"]["angle_at_zero_deg"]
     d_nm = 1e6 / st["grating"]["lines_per_mm"]
+    # the rig is calibrated moving up: the reading moving up is the mechanical centre plus
+    # half the backlash
+    half_b = 0.5 * (listed[0]["backlash_steps"] or 0.0)
     for r in rows:
         # Littrow: m lambda = 2 d sin(theta) (Palmer, Diffraction Grating Handbook), order 1.
-        lam = 2 * d_nm * math.sin(math.radians(a0 + k * r["centre_steps"]))
+        lam = 2 * d_nm * math.sin(math.radians(a0 + k * (r["centre_steps"] + half_b)))
         assert r["wavelength_nm"] == pytest.approx(lam, abs=1e-6)
     # Neighbouring modes are one free spectral range apart: lambda^2 / (2 n_g L)
     # (Saleh & Teich), which the simulator computes from its own chip.

@@ -100,3 +100,33 @@ def test_spacing_uncertainty_is_honest_against_the_simulators_truth(scenario, se
     local = 1.0 / coef[-2]                                            # steps per mode at `at`
     k = r["spacing_steps_k95"] if scenario == "drift" else 3.0
     assert abs(r["spacing_steps"] - local) <= k * r["spacing_steps_u"]
+
+
+@pytest.mark.parametrize("moving", ["up", "down"])
+def test_mode_wavelengths_hold_for_the_direction_the_stage_was_calibrated_in(moving):
+    # The simulated mount reads true moving up, and reads b (its 35-step dead band) low
+    # moving down (sims/mechanics.py): a calibration taken moving down has the angle
+    # offset k b larger (grating angle = angle_at_zero_deg + deg_per_step * steps, then
+    # Palmer's Littrow equation). Either way each mode's wavelength in the map is the one the
+    # simulator's true centre gives, to a small fraction of a mode spacing.
+    from analysis import physics
+    from analysis.pipeline import analyze_trace
+    rig0 = load_rig(None, ['sim.scenario="backlash"', "sim.seed=1", "sweep.passes=2"])
+    st = rig0["stage"]
+    truth = SimBench(rig0.sections).truth()
+    b = 35.0                                   # the scenario's dead band (sims/scenarios.py)
+    a0 = st["angle_at_zero_deg"] + (st["deg_per_step"] * b if moving == "down" else 0.0)
+    rig = load_rig(None, ['sim.scenario="backlash"', "sim.seed=1", "sweep.passes=2",
+                          f'stage.calibrated_moving="{moving}"', f"stage.angle_at_zero_deg={a0!r}",
+                          f"sim.true_angle_at_zero_deg={st['angle_at_zero_deg']!r}"])
+    from sims.trace import simulate_trace
+    tr = simulate_trace(rig.sections)
+    r = analyze_trace(tr.position_steps, tr.value, tr.direction, tr.pass_index, rig.sections, rig["counter"])
+    assert r["backlash_steps"] == pytest.approx(b, abs=1.0)
+    c = np.asarray(truth["mode_centres_steps"])
+    lam_true = physics.littrow_wavelength_nm(st["angle_at_zero_deg"] + st["deg_per_step"] * c,
+                                             rig["grating"]["lines_per_mm"])
+    spacing_nm = truth["spacing_nm"]
+    for row in r["mode_map"]:
+        j = int(np.argmin(np.abs(c - row["centre_steps"])))
+        assert abs(row["wavelength_nm"] - lam_true[j]) < 0.05 * spacing_nm
