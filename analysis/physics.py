@@ -9,8 +9,15 @@ Relations (standard sources):
   of Photonics; Coldren, Corzine & Mashanovitch, Diode Lasers and Photonic
   Integrated Circuits). Hence L = lambda^2 / (2*n_g*delta_lambda).
 
-Units: steps, degrees, lines per mm, nm, um. The stage calibration is linear:
-angle_deg = angle_at_zero_deg + deg_per_step * steps. The forward chain takes
+Units: steps, degrees, lines per mm, nm, um, GHz. The stage calibration is linear:
+angle_deg = angle_at_zero_deg + deg_per_step * steps, for the stage moving the way it
+moved when calibrated ([stage] calibrated_moving).
+
+Wavelengths are those the grating equation gives, in the air around the grating;
+vacuum wavelengths are n_air (~1.00027) times longer, and a length from air values
+is low by the same ~0.03 %, well inside the uncertainties here. The inputs are taken
+as uncorrelated (an angle offset and a step size fitted together are correlated in
+fact; the budget does not model that). The forward chain takes
 floats or numpy arrays alike (the Monte Carlo check evaluates it on arrays).
 """
 from __future__ import annotations
