@@ -105,6 +105,8 @@ def print_result(result: dict) -> None:
     from rich.table import Table
     from rich.text import Text
     con = Console()
+    if not con.is_terminal:          # a pipe or a file: wide enough for the budget table
+        con = Console(width=140)
     t = Table(title="modetick analyze", show_header=False)
     t.add_column(style="grey62")
     t.add_column()

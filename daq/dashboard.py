@@ -119,11 +119,13 @@ def render(st: LiveState, width: int = 80) -> Panel:
 
     left = Table.grid()
     left.add_row(Text("modes counted", style=LABEL_STYLE))
-    left.add_row(big_number(est.get("modes", 0)))
+    # the block digits need ~26 columns beside the figures: on a narrow terminal, plain bold
+    left.add_row(big_number(est.get("modes", 0)) if width >= 76 else
+                 Text(str(est.get("modes", 0)), style=COUNT_STYLE))
     left.add_row(Text(f"blips seen {est.get('crossings', 0)}", style=LABEL_STYLE))
 
     right = Table.grid(padding=(0, 1))
-    right.add_column(style=LABEL_STYLE, no_wrap=True)
+    right.add_column(style=LABEL_STYLE, no_wrap=True, min_width=11)   # "chip length" whole
     right.add_column(no_wrap=True)
     if est.get("warming_up"):       # a 0 that is not a count yet
         right.add_row("warming up", Text(est["warming_up"], style=WARN_STYLE))
@@ -143,7 +145,7 @@ def render(st: LiveState, width: int = 80) -> Panel:
         right.add_row(k, f"{v:.4g}")
 
     top = Table.grid(expand=True)
-    top.add_column(width=26)
+    top.add_column(width=26 if width >= 76 else 15)
     top.add_column(ratio=1)
     top.add_row(left, right)
 

@@ -151,6 +151,7 @@ class Engine:
         # (set by the caller from the log before run()).
         self._resume_pass, self._resume_pos = 0, None
         self.passes_announced = 0     # "pass" events already in the log (a resumed run's)
+        self._paused_s = 0.0          # time spent paused (not in the rate)
         self._last_value = None
         self._same_count = 0
 
@@ -193,7 +194,7 @@ class Engine:
             writer, self._writer = self._writer, None
             writer.close()     # every handed-over chunk is in the log before we return
             sys.setswitchinterval(switch)
-            st.t_run_s = time.monotonic() - self._t_start
+            st.t_run_s = time.monotonic() - self._t_start - self._paused_s
         writer.raise_error()
         return status
 
@@ -353,7 +354,7 @@ class Engine:
             self._same_count, self._last_value = 0, r.value
         if now >= self._next_flush or len(vals) >= FLUSH_SAMPLES:
             self.state.t_s = t
-            self.state.t_run_s = now - self._t_start
+            self.state.t_run_s = now - self._t_start - self._paused_s     # the rate leaves pauses out
             self.flush()
             self._next_flush = now + FLUSH_S
 
@@ -402,8 +403,10 @@ class Engine:
             self._writer.wait_written(PAUSE_WAIT_S)
         self.state.paused = True
         self.note("status", "paused")
+        t_pause = time.monotonic()
         while self.pause_flag.is_set() and not self.stop_flag():
             time.sleep(0.05)
+        self._paused_s += time.monotonic() - t_pause
         self.state.paused = False
         self.note("status", "resumed")
 

@@ -122,7 +122,7 @@ def summary_rows(s: dict) -> list[tuple[str, str]]:
     rows.append(("samples", f"{s.get('samples', 0)}   log {s.get('log', '')}"))
     t = s.get("truth")
     if t:
-        rows.append(("truth (sim)", ", ".join(
+        rows.append(("truth (sim)" if s.get("status") == "finished" else "truth (whole sweep)", ", ".join(
             f"{label} {t[k]:.6g}{unit}" for k, label, unit in (
                 ("modes", "modes", ""), ("spacing_steps", "spacing", " steps"),
                 ("length_um", "length", " µm"), ("group_index", "n_g", "")) if t.get(k) is not None)))

@@ -93,3 +93,12 @@ def test_a_count_not_started_yet_says_why():
     assert "warming up noise level, 1000/2048 samples" in " ".join(screen.split())
     assert "(warming up: noise level, 1000/2048 samples)" in PlainView(st).line()
     assert "warming up" not in _screen(_state())
+
+
+def test_a_narrow_terminal_keeps_every_label_whole():
+    # 60 columns (a split SSH window): the count drops the block digits, the labels stay whole
+    text = _screen(_state(), width=60)
+    assert all(len(l) <= 60 for l in text.splitlines())
+    for label in ("modes counted", "spacing ", "position ", "progress ", "blips seen 47"):
+        assert label in text
+    assert "…" not in text.split("progress")[0]
