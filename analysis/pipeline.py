@@ -231,8 +231,8 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
         result["spacing_steps_k95"] = float(student_t.ppf(0.975, dof))
         if dof < DOF_NOTE:
             result["notes"].append(
-                f"{dof:.1f} effective degrees of freedom behind spacing_steps_u: for 95 % coverage multiply "
-                f"it by spacing_steps_k95 = {result['spacing_steps_k95']:.2f} (Student's t), not by 2")
+                f"{dof:.1f} effective degrees of freedom behind the spacing's uncertainty: for 95 % coverage "
+                f"multiply it by k = {result['spacing_steps_k95']:.2f} (Student's t), not by 2")
     result["mode_map"] = [
         {"mode": int(k), "centre_up_steps": _f(u), "centre_down_steps": _f(dn), "centre_steps": _f(m),
          "n_up": int(nu), "n_down": int(nd), "height": _f(h), "width_steps": _f(w)}
@@ -246,6 +246,12 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
         # mechanical centres are half the backlash from where it reads moving that way
         res = calibrated_results(cal, chip, spacing, spacing_u or 0.0, cal.calibrated_position(centre, backlash))
         result.update(res)
+        seen = {"up" if mc["n_up"].sum() else None, "down" if mc["n_down"].sum() else None} - {None}
+        if backlash is None and seen and cal.moving not in seen:
+            result["notes"].append(
+                f"the modes were seen moving {'/'.join(sorted(seen))} only, and the calibration holds moving "
+                f"{cal.moving} ([stage] calibrated_moving): with no backlash figure (that needs a pass each "
+                "way) the wavelengths can be off by the backlash times the tuning rate")
         for row in result["mode_map"]:
             cs = row["centre_steps"]
             row["wavelength_nm"] = None if cs is None else physics.littrow_wavelength_nm(
@@ -265,8 +271,9 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
                   "spacing_steps": span / n_int, "spacing_steps_u": u_span / n_int}
             chip = (sections or {}).get("chip", {}) or {}
             if cal is not None and chip.get("group_index"):
+                ends = [cal.calibrated_position(float(mech[ok][i]), backlash) for i in (i_lo, i_hi)]
                 bc.update(physics.length_by_count_steps(
-                    n_int + 1, float(mech[ok][i_lo]), float(mech[ok][i_hi]), u_end, cal,
+                    n_int + 1, ends[0], ends[1], u_end, cal,
                     float(chip["group_index"]), float(chip.get("group_index_u") or 0.0)))
             result["by_count"] = bc
     return result
@@ -281,8 +288,8 @@ def fit_notes(fit: dict | None, n_passes: int, have_spacing: bool) -> list[str]:
     notes = []
     if have_spacing and n_passes < 2:
         notes.append("one pass only: a drift of the chip's modes during the sweep (temperature, current) "
-                     "stretches or shrinks the spacing and cannot be told apart from it, so spacing_steps_u "
-                     "leaves it out; sweep back and forth (sweep.passes >= 2) to measure it")
+                     "stretches or shrinks the spacing and cannot be told apart from it, so the spacing's "
+                     "uncertainty leaves it out; sweep back and forth (sweep.passes >= 2) to measure it")
     if fit and fit.get("residual_lag1", 0.0) >= LAG1_NOTE:
         notes.append(f"the mode centres wander about the fit (lag-1 autocorrelation {fit['residual_lag1']:.2f}): "
                      f"the spacing's standard error is {fit['se_factor']:.2g} times the least-squares one; "

@@ -37,7 +37,8 @@ def configure(p) -> None:
 # figures in nm and the chip length come from; the rest (sweep, devices, limits) made
 # the samples and is fixed by them.
 REPLAY_SECTIONS = ("counter", "chip", "grating")
-REPLAY_STAGE_KEYS = ("deg_per_step", "deg_per_step_u", "angle_at_zero_deg", "angle_at_zero_deg_u")
+REPLAY_STAGE_KEYS = ("deg_per_step", "deg_per_step_u", "angle_at_zero_deg", "angle_at_zero_deg_u",
+                     "calibrated_moving")
 
 
 def replay_rig(log: RunLog, overrides: list[str]):
@@ -49,7 +50,7 @@ def replay_rig(log: RunLog, overrides: list[str]):
         section, _, rest = item.partition(".")
         key = rest.split("=", 1)[0].strip()
         if section.strip() not in REPLAY_SECTIONS and not (section.strip() == "stage" and key in REPLAY_STAGE_KEYS):
-            raise RigError(str(log.path), f"--set {item}",
+            raise RigError(f"of the replay of {log.path}", f"--set {item}",
                            "a replay re-reads the logged samples: only counter.*, chip.*, grating.* and the "
                            "stage calibration (deg_per_step, angle_at_zero_deg and their _u) can change")
     if not rig.text:

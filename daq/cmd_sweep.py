@@ -165,16 +165,16 @@ def run(args) -> int:
                         stop_flag=lambda: stopper.signum is not None, pause_flag=pause, t0_s=t0)
         stopper.engine = engine
         if skip:
-            if log.meta("status") == "finished":
+            if log.meta("status") == "finished" or (
+                    rig["sweep"]["mode"] != "scan" and skip >= schedule.recorded_count(rig["sweep"])):
                 return fail(f"log {log.path}: the run is already complete", 2)
+            # before anything can fail: the restored counter counts these again
+            log.drop_provisional_events()
             if rig["sweep"]["mode"] == "scan":
                 engine._resume_pass = int(s_last.pass_index[-1])
                 engine._resume_pos = int(s_last.position_steps[-1])
             else:
-                if skip >= schedule.recorded_count(rig["sweep"]):
-                    return fail(f"log {log.path}: the run is already complete", 2)
                 engine.reapproach(skip)
-            log.drop_provisional_events()       # the restored counter counts them again
             engine.passes_announced = len(log.events("pass"))
             engine.note("status", f"resumed after {skip} samples"
                                   + (f", devices now at {', '.join(args.set)}" if args.set else ""))

@@ -194,6 +194,10 @@ class Engine:
             writer, self._writer = self._writer, None
             writer.close()     # every handed-over chunk is in the log before we return
             sys.setswitchinterval(switch)
+            if not writer.failed:
+                # the last chunk may have come within a second of the last commit: commit
+                # it now with the counter state that has seen it, so a resume lines up
+                self.log.set_meta(counter_state=_json_state(self.counter))
             st.t_run_s = time.monotonic() - self._t_start - self._paused_s
         writer.raise_error()
         return status

@@ -14,6 +14,7 @@ import copy
 import difflib
 import json
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -272,7 +273,13 @@ def parse_rig(text: str, source: str = "<string>", overrides: list[str] | None =
                 raise RigError(source, f"[{name}] {key}", "is required")
             out[key] = copy.deepcopy(default)
         sections[name] = out
-    _validate_values(source, sections)
+    try:
+        _validate_values(source, sections)
+    except RigError as exc:
+        m = re.fullmatch(r"\[(\w+)\] (\w+)", exc.key or "")
+        if m and (m.group(1), m.group(2)) in given:
+            raise RigError(source, exc.key, exc.message + said(m.group(1), m.group(2))) from None
+        raise
     return Rig(source=source, text=text, sections=sections, overrides=overrides)
 
 
@@ -293,18 +300,31 @@ def load_rig(path: str | Path | None = None, overrides: list[str] | None = None)
 CONNECTION_KEYS = ("port", "resource", "source")
 
 
-def reconnect(rig: Rig, items: list[str], source: str = "--resume") -> Rig:
-    """The rig with connection keys (CONNECTION_KEYS) changed by SECTION.KEY=VALUE items."""
+def _is_device(source: str) -> bool:
+    """A camera given as a device (an index or /dev/...), not a recorded video file."""
+    return source.isdigit() or source.startswith("/dev/")
+
+
+def reconnect(rig: Rig, items: list[str], source: str = "of the resumed run") -> Rig:
+    """The rig with connection keys (CONNECTION_KEYS) changed by SECTION.KEY=VALUE items:
+    only keys the run already used, and a camera only from one device to another (a
+    recorded video in its place would change the data)."""
     sections = copy.deepcopy(rig.sections)
+    have = [f"{sec}.{k}" for sec, t in sections.items() for k in CONNECTION_KEYS if t.get(k)]
     for item in items:
         section, key, value = _parse_override(item, source)
-        if key not in CONNECTION_KEYS or key not in sections.get(section, {}):
-            have = [f"{sec}.{k}" for sec, t in sections.items() for k in CONNECTION_KEYS if k in t]
+        old = sections.get(section, {}).get(key) if key in CONNECTION_KEYS else None
+        if not old:
             raise RigError(source, f"--set {item}",
                            "a resumed run keeps the rig stored in its log; only where a device is "
                            f"connected may change ({', '.join(have) or 'this rig has no such key'})")
+        value = str(value) if isinstance(value, int) and not isinstance(value, bool) else value
         if not isinstance(value, str) or not value:
-            raise RigError(source, f"--set {item}", "must be a non-empty string")
+            raise RigError(source, f"--set {item}", "must be a device path, a port or a resource string")
+        if key == "source" and not (_is_device(str(old)) and _is_device(value)):
+            raise RigError(source, f"--set {item}",
+                           "a camera may move to another device (an index or /dev/video...), not from or to a "
+                           "video file: that would change the data")
         sections[section][key] = value
     return Rig(source=rig.source, text=rig.text, sections=sections, overrides=rig.overrides + list(items))
 

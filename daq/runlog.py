@@ -304,7 +304,11 @@ class RunLog:
     PROVISIONAL = "provisional_events_after"
 
     def mark_provisional_events(self) -> None:
-        """Events appended from now on are provisional (committed before they are written)."""
+        """Events appended from now on are provisional (committed before they are written).
+        A mark already there stays: the events after it are still provisional (a resume
+        that failed before it dropped them)."""
+        if self.meta(self.PROVISIONAL) is not None:
+            return
         last = self.conn.execute("SELECT COALESCE(MAX(id), 0) FROM events").fetchone()[0]
         self.set_meta(**{self.PROVISIONAL: str(last)})
 

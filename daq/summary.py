@@ -101,20 +101,24 @@ def _pm(v, u, digits: int | None = None) -> str:
 def summary_rows(s: dict) -> list[tuple[str, str]]:
     """The end-of-run summary for a person: (label, value with units and ± u) rows; the
     full record is the JSON (--json) and the log."""
-    rows = [("status", s.get("status", "?") + (f" ({s['reason']})" if s.get("reason") else "")),
+    status, reason = s.get("status", "?"), s.get("reason") or ""
+    rows = [("status", reason if reason.startswith(status) else status + (f": {reason}" if reason else "")),
             ("modes counted", f"{s.get('modes', 0)}   ({s.get('crossings', 0)} blips seen)")]
     sp = s.get("spacing_steps")
     if sp is not None:
-        k95 = s.get("spacing_steps_k95")
-        rows.append(("mode spacing", f"{_pm(sp, s.get('spacing_steps_u'))} steps"
-                     + (f"   (95 %: k = {k95:.2f})" if k95 else "")))
+        k95, u = s.get("spacing_steps_k95"), s.get("spacing_steps_u")
+        rows.append(("mode spacing", f"{_pm(sp, u)} steps"
+                     + (f"   (95 %: ± {k95 * u:.2g} steps)" if k95 and u else "")))
     if s.get("spacing_nm") is not None:
         rows.append(("", f"{_pm(s['spacing_nm'], s.get('spacing_nm_u'))} nm   "
                          f"{_pm(s.get('spacing_ghz'), s.get('spacing_ghz_u'))} GHz"))
         rows.append(("wavelength", f"{_pm(s['wavelength_nm'], s.get('wavelength_nm_u'))} nm"))
     if s.get("length_um") is not None:
         top = (s.get("budget") or [{}])[0]
-        share = f"   (mostly {top['input']}, {100 * top['share']:.0f} % of u²)" if top.get("input") else ""
+        share = ""
+        if top.get("input"):
+            word = "mostly" if top["share"] >= 0.5 else "largest part"
+            share = f"   ({word} {top['input']}, {100 * top['share']:.0f} % of u²)"
         rows.append(("chip length", f"{_pm(s['length_um'], s.get('length_um_u'))} µm{share}"))
     if s.get("backlash_steps") is not None:
         b = s["backlash_steps"]

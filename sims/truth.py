@@ -101,8 +101,10 @@ def compute_truth(model: SimModel) -> dict:
         # the local spacing at the middle of the detectable modes (a central difference of
         # the true centres): the spacing in steps changes along a sweep, and this is the
         # place a fit of centre against mode number states it for
+        # (per mode number: a missed order between the two counts as its own step)
         m = found.size // 2
-        spacing_steps = float(abs(found[m + 1] - found[m - 1]) / 2 if found.size % 2 else abs(found[m] - found[m - 1]))
+        lo, hi = (m - 1, m + 1) if found.size % 2 else (m - 1, m)
+        spacing_steps = float(abs(found[hi] - found[lo]) / abs(found_q[hi] - found_q[lo]))
     else:
         spacing_steps = spacing_mean
     return {

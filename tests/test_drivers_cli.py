@@ -227,6 +227,14 @@ def test_after_a_pulled_cable_the_run_resumes_on_new_ports(tmp_path):
         r = run_sweep(EMULATED, log, f"stage.port={emu.info['stepper']}",
                       f"detector.resource={emu.info['meter_resource']}", *DUE)
     assert r.returncode == 1, r.stderr
+    # a first try on the new ports fails at once (the cable again, before the run restarts):
+    # that must not make the stop's last events permanent
+    with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter",
+                         "--close-after", "stepper:1") as emu1:
+        r = modetick("sweep", "--resume", str(log), "--json", *sets([
+            f"stage.port={emu1.info['stepper']}", f"detector.resource={emu1.info['meter_resource']}"]),
+            timeout=120)
+    assert r.returncode == 1, r.stderr
     with EmulatorProcess("--rig", str(EMULATED), "--stepper", "--meter") as emu2:
         r = modetick("sweep", "--resume", str(log), "--json", *sets([
             f"stage.port={emu2.info['stepper']}", f"detector.resource={emu2.info['meter_resource']}"]),

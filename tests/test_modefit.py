@@ -86,3 +86,22 @@ def test_notes_say_what_the_uncertainty_leaves_out():
     assert fit_notes({"residual_lag1": 0.0, "se_factor": 1.0, "dof": 80.0}, 2, True) == []
     wander = fit_notes({"residual_lag1": 0.7, "se_factor": 2.38, "dof": 12.0}, 3, True)
     assert len(wander) == 1 and "0.70" in wander[0] and "2.4 times" in wander[0]
+
+
+def test_the_order_the_modes_come_in_changes_nothing():
+    # unequal weights (modes crossed different numbers of times), AR(1) scatter: the same
+    # centres handed over shuffled give the same spacing and the same uncertainty
+    rng = np.random.default_rng(3)
+    k, c = centres(rng, 60, 0.3, 0.5)
+    w = rng.integers(1, 6, k.size).astype(float)
+    a = fit_spacing(k, c, w)
+    perm = rng.permutation(k.size)
+    b = fit_spacing(k[perm], c[perm], w[perm])
+    assert b[0] == pytest.approx(a[0], rel=1e-12) and b[1] == pytest.approx(a[1], rel=1e-9)
+    assert a[2]["residual_lag1"] > 0.1
+
+
+def test_an_exact_curve_has_no_autocorrelation_to_credit():
+    k = np.arange(40.0)
+    sp, u, det = fit_spacing(k, 1000.0 + 45.5 * k)
+    assert sp == pytest.approx(45.5) and det["residual_lag1"] == 0.0 and det["se_factor"] == 1.0

@@ -106,6 +106,23 @@ def test_an_error_from_a_set_item_names_it():
         load_rig(None, ["sweep.pases=3"])
     with pytest.raises(RigError, match=r"must be an integer.*given by --set sweep.passes=x"):
         load_rig(None, ["sweep.passes=x"])
+    with pytest.raises(RigError, match=r"positive number of steps.*given by --set sweep.step=0"):
+        load_rig(None, ["sweep.step=0"])
     with pytest.raises(RigError) as exc:
         parse_rig("[sweep]\nstart = 0\nstop = 10\nstep = 1\npases = 2\n")
     assert "--set" not in str(exc.value)
+
+
+def test_a_resume_may_move_a_device_but_not_change_the_data():
+    from daq.rig import reconnect
+    cam = load_rig(Path(default_rig_path()).parent / "camera.toml")
+    assert reconnect(cam, ["detector.source=1"])["detector"]["source"] == "1"     # re-enumerated
+    assert reconnect(cam, ["detector.source=/dev/video2"])["detector"]["source"] == "/dev/video2"
+    with pytest.raises(RigError, match="not from or to a video file"):
+        reconnect(cam, ["detector.source=/tmp/another-night.mp4"])
+    ser = load_rig(Path(default_rig_path()).parent / "serial-ascii.toml")
+    assert reconnect(ser, ["stage.port=/dev/ttyUSB3"])["stage"]["port"] == "/dev/ttyUSB3"
+    for item in ("aux.resource=ASRL/dev/ttyUSB4::INSTR",   # not used by this run: would add data
+                 "sweep.step=2", "chip.group_index=3.7"):
+        with pytest.raises(RigError, match="only where a device is connected may change"):
+            reconnect(ser, [item])

@@ -143,9 +143,23 @@ def test_float_codec_is_bit_exact_for_awkward_values():
     assert back.tobytes() == a.tobytes()
 
 
+def _create_unique(base: str) -> str:
+    log = RunLog.create(Path(base), load_rig(None), unique=True)
+    log.close()
+    return str(log.path)
+
+
+def test_default_names_never_collide_even_between_processes(tmp_path):
+    # Eight processes create a log under the same default name at once: eight files.
+    import multiprocessing
+    base = str(tmp_path / "runs" / "20261202T000000Z.db")
+    with multiprocessing.get_context("spawn").Pool(4) as pool:
+        paths = pool.map(_create_unique, [base] * 8)
+    assert len(set(paths)) == 8 and all(Path(p).exists() for p in paths)
+
+
 def test_default_names_never_collide(tmp_path):
-    # Two runs started in the same second under the default name: the second takes NAME-2.db
-    # (claimed with O_EXCL, so even two processes racing cannot share a file).
+    # Two runs started in the same second under the default name: the second takes NAME-2.db.
     from daq.runlog import default_log_path
     rig = load_rig(None)
     base = default_log_path(tmp_path)
@@ -178,6 +192,19 @@ def test_end_of_run_summary_reads_with_units_and_rounded_uncertainties():
                               "crossings": 41, "spacing_steps": 45.6, "spacing_steps_u": 0.01,
                               "length_um": 801.4, "length_um_u": 13.7, "samples": 9, "log": "x.db",
                               "budget": [{"input": "[chip] group_index", "share": 0.654}]}))
-    assert rows["status"] == "stopped (stopped by the q key)"
+    assert rows["status"] == "stopped by the q key"
     assert rows["modes counted"].startswith("40") and "41 blips" in rows["modes counted"]
     assert rows["chip length"] == "801 ± 14 µm   (mostly [chip] group_index, 65 % of u²)"
+
+
+def test_the_summary_says_what_its_figures_are():
+    from daq.summary import summary_rows
+    rows = dict(summary_rows({"status": "finished", "spacing_steps": 45.546, "spacing_steps_u": 0.026,
+                              "spacing_steps_k95": 12.71, "length_um": 801.4, "length_um_u": 13.7,
+                              "budget": [{"input": "[stage] angle_at_zero_deg", "share": 0.25}]}))
+    # ± is the standard uncertainty; the 95 % interval is spelt out for that row (k u = 0.33)
+    assert rows["mode spacing"] == "45.546 ± 0.026 steps   (95 %: ± 0.33 steps)"
+    assert "largest part [stage] angle_at_zero_deg, 25 %" in rows["chip length"]
+    assert rows["status"] == "finished"
+    faulted = dict(summary_rows({"status": "faulted", "reason": "stage /dev/ttyUSB0: port closed"}))
+    assert faulted["status"] == "faulted: stage /dev/ttyUSB0: port closed"
