@@ -158,3 +158,18 @@ def test_pause_shows_the_count_of_every_sample_taken(tmp_path):
     log.close()
     assert 500 < seen["taken"] < 4000, seen          # paused mid-sweep
     assert seen["shown"] == seen["taken"]
+
+
+def test_the_counter_state_in_the_log_has_seen_every_logged_sample(tmp_path):
+    # A run shorter than the commit interval: its last chunk is written within a second of
+    # the previous commit. The counter state the log keeps for --resume must still be the
+    # one that has seen exactly the samples logged (else a resume's indices slip).
+    import json
+    rig = load_rig(None, ["sweep.settle_s=0.0015", "sweep.passes=1", "sweep.stop=1400"])   # ~0.6 s, 3 chunks
+    s, d, _ = open_devices(rig.sections)
+    log = RunLog.create(tmp_path / "short.db", rig)
+    eng = Engine(rig, s, d, StreamCounter(rig["counter"]), log, LiveState())
+    assert eng.run() == "finished"
+    state = json.loads(log.meta("counter_state"))
+    assert log.n_samples == 401 and state["_n"] == log.n_samples
+    log.close()
