@@ -189,6 +189,8 @@ def run(args) -> int:
                     status = engine.run(skip)
             else:
                 status = engine.run(skip)
+            if status == "finished":       # (a stopped run's are counted below, interruptibly)
+                engine.finish_counting()   # the last frame shows the last blips counted too
             state.status = status          # the dashboard's last frame says how it ended
         if status == "stopped":
             code = EXIT_FOR_SIGNAL.get(stopper.signum, 130)

@@ -152,6 +152,7 @@ class Engine:
         self._resume_pass, self._resume_pos = 0, None
         self.passes_announced = 0     # "pass" events already in the log (a resumed run's)
         self._paused_s = 0.0          # time spent paused (not in the rate)
+        self._counted_out = False     # finish_counting done
         self._last_value = None
         self._same_count = 0
 
@@ -368,8 +369,11 @@ class Engine:
         The counter state in the log stays the one saved with the last block,
         so a run stopped here can still be resumed as if never finished; these
         events are marked provisional, and a resume drops them (the restored
-        counter counts them again).
+        counter counts them again). Only once: later calls do nothing.
         """
+        if self._counted_out:
+            return
+        self._counted_out = True
         self.log.mark_provisional_events()
         events = self.counter.finish()
         rows = [(ev.index, self.state.t_s, ev.kind, ev.position_steps, ev.direction,
