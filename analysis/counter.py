@@ -1,6 +1,6 @@
 """The streaming mode counter: samples in, counted chip modes out.
 
-Signal stage (per batch of up to 262144 samples; its per-sample loops are
+Signal stage (per batch of up to BATCH = 131072 samples; its per-sample loops are
 compiled, see signal_kernels.py):
   * baseline: a grey opening (sliding minimum, then maximum) of 8-sample block
     means over ``baseline_window`` samples, single-sample dropouts filled in
@@ -48,7 +48,10 @@ import numpy as np
 from analysis import crossing_kernels as ck
 from analysis import signal_kernels as kern
 from analysis.counter_settings import BLOCK, GROUP, NOISE_STRIDE, SETTINGS, validate_settings
+from analysis.first_spacing import initial_spacing
+from analysis.mode_table import ModeTable
 from analysis.modefit import fit_spacing, mechanical_centres
+from analysis.sample_buffer import SampleBuffer
 
 INIT_NOISE = 2048    # samples the first noise level is taken from
 NOISE_CLIP = 4.0     # excursions below the baseline count at most this many sigma
@@ -56,7 +59,7 @@ EVENT_GROUP = 65536  # samples per update of the running spacing and typical bli
 BATCH = 131072       # samples the work waits for (or max_latency_s), see StreamCounter;
                      # also the most done in one pass: a batch's samples and positions
                      # (2 MB) stay in cache through its passes (262144: 12 % slower)
-CHUNK_ROOM = 16384   # places kept free for the next chunks after a trim (see _Buf.make_room)
+CHUNK_ROOM = 16384   # places kept free for the next chunks after a trim (see SampleBuffer.make_room)
 EVENT_MIN = 64       # candidates that wait to be counted together (see max_latency_s)
 N_INIT = 12          # candidates in one run before the spacing is first estimated
 INIT_COUNTS = (12, 24, 48, 96, 192)   # candidate counts at which that is tried
@@ -104,205 +107,11 @@ _RFIELDS = ("mode", "index", "start", "end", "position_steps", "direction", "hei
             "width_steps", "area", "parts", "weak", "run")
 
 
-def initial_spacing(runs: list[np.ndarray], weights: list[np.ndarray] | None = None
-                    ) -> tuple[float | None, float]:
-    """Spacing from the centres of the first candidates, robust to split blips.
-
-    ``runs`` holds the candidate centres of each monotone run (``weights``
-    their areas). An area-weighted Rayleigh periodogram of the centres peaks
-    at the spacing and at its fractions (and, for split blips, at the finer
-    split structure): the longest period with a strong peak is the spacing.
-    It is then refined by merging candidates closer than half of it and taking
-    the median gap between the merged centres. Returns (spacing, number of
-    spacings the candidates span); the span is 0 when fewer than 70 % of the
-    lattice places are occupied (the period found is then finer structure,
-    not the spacing), and (None, 0) if there are too few candidates.
-    """
-    runs = [np.asarray(r, float) for r in runs]
-    if weights is None:
-        weights = [np.ones_like(r) for r in runs]
-    use = [(r, np.asarray(w, float)) for r, w in zip(runs, weights) if r.size >= 3]
-    if not use:
-        return None, 0.0
-    gaps = np.concatenate([np.abs(np.diff(r)) for r, _ in use])
-    gaps = gaps[gaps > 0]
-    span = max(float(np.ptp(r)) for r, _ in use)
-    if gaps.size < 2 or span <= 0:
-        return None, 0.0
-    tmin = 0.5 * float(np.median(gaps))
-    tmax = span / 3.0
-    t0 = None
-    if tmax > tmin:
-        def power(grid):
-            pw = np.zeros(grid.size)
-            norm = 0.0
-            for r, w in use:
-                w = np.maximum(w, 0) + 1e-12
-                pw += np.abs(np.exp(2j * np.pi * (r - r[0])[None, :] / grid[:, None]) @ w) ** 2
-                norm += w.sum() ** 2
-            return pw / norm
-
-        # peaks are about T/span wide (relative): a grid at a quarter of that, then refined
-        rel = 0.25 * tmin / span
-        grid = np.exp(np.arange(np.log(tmin), np.log(tmax), rel))
-        if grid.size > 4000:
-            grid = np.exp(np.linspace(np.log(tmin), np.log(tmax), 4000))
-        pw = power(grid)
-        peak = (pw[1:-1] >= pw[:-2]) & (pw[1:-1] >= pw[2:])
-        cand = np.flatnonzero(peak) + 1
-        strong = cand[pw[cand] >= 0.35 * pw.max()]
-        if strong.size:
-            j = int(strong.max())
-            fine = np.linspace(grid[j - 1], grid[j + 1], 41)
-            t0 = float(fine[int(np.argmax(power(fine)))])
-    if t0 is None:
-        t0 = float(np.quantile(gaps, 0.75))
-    merged = []
-    for r, w in use:
-        order = np.argsort(r)
-        r, w = r[order], np.maximum(w[order], 1e-12)
-        cid = np.cumsum(np.concatenate(([1], np.diff(r) >= 0.5 * t0)))
-        cent = np.bincount(cid, weights=r * w)[1:] / np.bincount(cid, weights=w)[1:]
-        if cent.size >= 2:
-            merged.append(np.diff(cent))
-    if not merged:
-        return None, 0.0
-    g = np.concatenate(merged)
-    s = t0
-    for _ in range(3):
-        s = float(np.median(g / np.maximum(1.0, np.rint(g / s))))
-    if s <= 0:
-        return None, 0.0
-    # a real spacing leaves few places of its lattice empty (a missed blip now
-    # and then); the finer structure inside split blips leaves most of them empty
-    occupied = (g.size + len(merged)) / (np.sum(np.maximum(1.0, np.rint(g / s))) + len(merged))
-    return s, (span / s if occupied >= 0.7 else 0.0)
-
-
 _new_tuple = tuple.__new__
 
 # direction dtypes the compiled chunk check takes as they are (build_kernels.EXPORTS)
 _CHECKED_DIRECTIONS = (np.dtype(np.int8), np.dtype(np.int64), np.dtype(np.float64))
 _F8 = np.dtype(np.float64)
-
-
-class _Buf:
-    """A growable 1-d array: appends in place, drops from the front without copying."""
-
-    def __init__(self, dtype, data=None):
-        self.dtype = dtype
-        self.arr = np.zeros(4096, dtype)
-        self.lo = self.hi = 0
-        if data is not None:
-            self.extend(np.asarray(data, dtype))
-
-    def extend(self, v: np.ndarray) -> None:
-        n = v.size
-        if self.hi + n > self.arr.size:
-            live = self.hi - self.lo
-            cap = self.arr.size
-            while cap < 2 * (live + n):
-                cap *= 2
-            new = np.empty(cap, self.dtype) if cap != self.arr.size or self.lo < live else self.arr
-            new[:live] = self.arr[self.lo:self.hi]
-            self.arr, self.lo, self.hi = new, 0, live
-        self.arr[self.hi:self.hi + n] = v
-        self.hi += n
-
-    def drop(self, k: int) -> None:
-        self.lo += k
-
-    def make_room(self, n: int) -> None:
-        """Move the live samples to the front if fewer than n free places are left:
-        done right after a trim, it copies few samples, not a whole batch."""
-        if self.hi + n > self.arr.size and self.hi - self.lo + n <= self.arr.size:
-            live = self.hi - self.lo
-            self.arr[:live] = self.arr[self.lo:self.hi]
-            self.lo, self.hi = 0, live
-
-    @property
-    def a(self) -> np.ndarray:
-        return self.arr[self.lo:self.hi]
-
-
-class _ModeTable:
-    """Per-mode sums (per direction) for the mode map and the estimate."""
-
-    def __init__(self) -> None:
-        self.off = 0
-        z = np.zeros(0)
-        self.cnt = np.zeros((2, 0))
-        self.sum = np.zeros((2, 0))
-        self.sq = np.zeros((2, 0))
-        self.seen = z.copy()
-        self.strong = z.copy()        # trusted (non-weak) crossings per mode
-        self.hsum = z.copy()
-        self.wsum = z.copy()
-
-    def _grow(self, kmin: int, kmax: int) -> None:
-        n = self.seen.size
-        lo = min(kmin, self.off) if n else kmin
-        hi = max(kmax, self.off + n - 1) if n else kmax
-        if n and lo == self.off and hi == self.off + n - 1:
-            return
-        size = hi - lo + 1
-        shift = self.off - lo if n else 0
-
-        def grow(a: np.ndarray) -> np.ndarray:
-            b = np.zeros(a.shape[:-1] + (size,))
-            if n:
-                b[..., shift:shift + n] = a
-            return b
-
-        self.cnt, self.sum, self.sq = grow(self.cnt), grow(self.sum), grow(self.sq)
-        self.seen, self.hsum, self.wsum = grow(self.seen), grow(self.hsum), grow(self.wsum)
-        self.strong = grow(self.strong)
-        self.off = lo
-
-    def add1(self, k: int, d: int, pos: float, h: float, w: float, reliable: bool) -> None:
-        """add() for one crossing, without numpy overhead."""
-        if not self.seen.size or not self.off <= k < self.off + self.seen.size:
-            self._grow(k, k)
-        i = k - self.off
-        self.seen[i] += 1.0
-        self.hsum[i] += h
-        self.wsum[i] += w
-        if reliable:
-            self.strong[i] += 1.0
-            row = 1 if d < 0 else 0
-            self.cnt[row, i] += 1.0
-            self.sum[row, i] += pos
-            self.sq[row, i] += pos * pos
-
-    def add(self, k, d, pos, h, w, reliable) -> None:
-        """add1() for each crossing, in order (compiled)."""
-        k = np.ascontiguousarray(k, np.int64)
-        if k.size == 0:
-            return
-        self._grow(int(k.min()), int(k.max()))
-        ck.table_add(self.off, self.seen, self.hsum, self.wsum, self.strong, self.cnt, self.sum,
-                     self.sq, k, np.ascontiguousarray(d, np.int64),
-                     np.ascontiguousarray(pos, np.float64), np.ascontiguousarray(h, np.float64),
-                     np.ascontiguousarray(w, np.float64), np.ascontiguousarray(reliable, np.bool_))
-
-    def to_state(self) -> dict:
-        return {"off": self.off, "cnt": self.cnt.tolist(), "sum": self.sum.tolist(),
-                "sq": self.sq.tolist(), "seen": self.seen.tolist(), "strong": self.strong.tolist(),
-                "hsum": self.hsum.tolist(),
-                "wsum": self.wsum.tolist()}
-
-    @classmethod
-    def from_state(cls, st: dict) -> "_ModeTable":
-        t = cls()
-        t.off = int(st["off"])
-        t.cnt = np.array(st["cnt"], float).reshape(2, -1)
-        t.sum = np.array(st["sum"], float).reshape(2, -1)
-        t.sq = np.array(st["sq"], float).reshape(2, -1)
-        t.seen = np.array(st["seen"], float)
-        t.strong = np.array(st["strong"], float)
-        t.hsum = np.array(st["hsum"], float)
-        t.wsum = np.array(st["wsum"], float)
-        return t
 
 
 def _median(v) -> float:
@@ -345,18 +154,18 @@ class StreamCounter:
         self._minh = float(s["min_height"])
         self._last_proc = time.monotonic()
         # --- sample stage ---
-        self._xb = _Buf(np.float64)  # samples from absolute index _t0
-        self._pb = _Buf(np.float64)
-        self._db = _Buf(np.int8)
+        self._xb = SampleBuffer(np.float64)  # samples from absolute index _t0
+        self._pb = SampleBuffer(np.float64)
+        self._db = SampleBuffer(np.int8)
         self._t0 = 0
         self._n = 0                  # samples received
         self._done = 0               # samples through the detector
         self._last_dir = 0           # direction of the last sample through the detector
         self._last_in = 0            # direction of the last sample received
-        self._bmb = _Buf(np.float64)  # block means from block _bm0
+        self._bmb = SampleBuffer(np.float64)  # block means from block _bm0
         self._bm0 = 0
         self._nb = 0                 # complete (or final partial) blocks computed
-        self._bbb = _Buf(np.float64)  # baseline per block from block _bb0 up to _done // BLOCK
+        self._bbb = SampleBuffer(np.float64)  # baseline per block from block _bb0 up to _done // BLOCK
         self._bb0 = 0
         self._sigma: float | None = None
         self._floor = 0.0
@@ -397,7 +206,7 @@ class StreamCounter:
         self._prev_arrays: tuple | None = None   # _run_arrays(_run_prev), once made
         self._cur_arrays: tuple | None = None
         self._n_cross = 0
-        self._table = _ModeTable()
+        self._table = ModeTable()
         self._records: list[tuple] = []
         self._out: list[Event] = []
         self._est_cache: tuple | None = None
@@ -1373,11 +1182,11 @@ class StreamCounter:
                                         float(state["_ema"] is not None), gsum, state["_gcnt"],
                                         state["_gmax"], state["_rmax"]])
         c = cls(state["settings"])
-        c._xb = _Buf(np.float64, state["_x"])
-        c._pb = _Buf(np.float64, state["_p"])
-        c._db = _Buf(np.int8, state["_d"])
-        c._bmb = _Buf(np.float64, state["_bm"])
-        c._bbb = _Buf(np.float64, state["_bb"])
+        c._xb = SampleBuffer(np.float64, state["_x"])
+        c._pb = SampleBuffer(np.float64, state["_p"])
+        c._db = SampleBuffer(np.int8, state["_d"])
+        c._bmb = SampleBuffer(np.float64, state["_bm"])
+        c._bbb = SampleBuffer(np.float64, state["_bb"])
         for name in cls._STATE_PLAIN:
             setattr(c, name, state[name])
         kinds = {"start": np.int64, "end": np.int64, "peak": np.int64, "d": np.int64,
@@ -1391,7 +1200,7 @@ class StreamCounter:
         c._pend = [(np.array(s, np.int64), np.array(e, np.int64), np.array(f, np.float64))
                    for s, e, f in c._pend]
         c._pend_revs = [tuple(r) for r in c._pend_revs]
-        c._table = _ModeTable.from_state(state["_table"])
+        c._table = ModeTable.from_state(state["_table"])
         c._out = [Event(**e) for e in state["_pending_events"]]
         return c
 

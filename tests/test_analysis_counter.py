@@ -14,7 +14,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.signal import find_peaks
 
-from analysis.counter import SETTINGS, StreamCounter, initial_spacing, validate_settings
+from analysis.counter import SETTINGS, StreamCounter, validate_settings
+from analysis.first_spacing import initial_spacing
 from tests.tracegen import Spec, make_trace
 
 
@@ -308,7 +309,7 @@ def test_wide_blips_read_many_times_a_step_count_the_same_in_any_batches(seed):
 def test_sample_buffer_keeps_what_a_plain_list_keeps(ops):
     """The counter's growable buffer (appends in place, drops from the front, moves
     its live samples to the front to make room) against a plain Python list."""
-    from analysis.counter import _Buf
+    from analysis.sample_buffer import SampleBuffer as _Buf
     buf, ref, nxt = _Buf(np.float64), [], 0
     for op, n in ops:
         if op == "extend":
@@ -329,7 +330,7 @@ def test_sample_buffer_keeps_what_a_plain_list_keeps(ops):
 
 
 def test_sample_buffer_moves_its_samples_to_the_front_only_when_room_is_short():
-    from analysis.counter import _Buf
+    from analysis.sample_buffer import SampleBuffer as _Buf
     buf = _Buf(np.float64, np.arange(3000.0))
     buf.drop(2000)
     buf.make_room(1000)                       # 3000 + 1000 fit in the 4096 places
