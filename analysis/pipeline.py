@@ -222,7 +222,8 @@ def analyze_trace(position_steps, value, direction=None, pass_index=None, sectio
         if u_passes > (spacing_u or 0.0):
             spacing_u, dof = u_passes, len(pass_sp) - 1.0
         result["spacing_steps_u"] = spacing_u
-    result["notes"] = fit_notes(fit, len(pass_sp), spacing is not None)
+    result["notes"] = fit_notes(fit, len(pass_sp), spacing is not None,
+                                int(((sections or {}).get("sweep") or {}).get("passes") or 1))
     if dof is not None:
         from scipy.stats import t as student_t
         # the expanded uncertainty for 95 % coverage is k95 * u with Student's t at the
@@ -283,13 +284,15 @@ LAG1_NOTE = 0.5    # residual autocorrelation from which the report says so
 DOF_NOTE = 10.0    # effective degrees of freedom below which k = 2 is not 95 %
 
 
-def fit_notes(fit: dict | None, n_passes: int, have_spacing: bool) -> list[str]:
+def fit_notes(fit: dict | None, n_passes: int, have_spacing: bool, planned_passes: int = 1) -> list[str]:
     """What the spacing's standard uncertainty leaves out, or how to read it, in words."""
     notes = []
     if have_spacing and n_passes < 2:
+        how = ("resume the run to finish its passes" if planned_passes >= 2
+               else "sweep back and forth (sweep.passes >= 2)")
         notes.append("one pass only: a drift of the chip's modes during the sweep (temperature, current) "
                      "stretches or shrinks the spacing and cannot be told apart from it, so the spacing's "
-                     "uncertainty leaves it out; sweep back and forth (sweep.passes >= 2) to measure it")
+                     f"uncertainty leaves it out; {how} to measure it")
     if fit and fit.get("residual_lag1", 0.0) >= LAG1_NOTE:
         notes.append(f"the mode centres wander about the fit (lag-1 autocorrelation {fit['residual_lag1']:.2f}): "
                      f"the spacing's standard error is {fit['se_factor']:.2g} times the least-squares one; "

@@ -52,7 +52,8 @@ def replay_rig(log: RunLog, overrides: list[str]):
         if section.strip() not in REPLAY_SECTIONS and not (section.strip() == "stage" and key in REPLAY_STAGE_KEYS):
             raise RigError(f"of the replay of {log.path}", f"--set {item}",
                            "a replay re-reads the logged samples: only counter.*, chip.*, grating.* and the "
-                           "stage calibration (deg_per_step, angle_at_zero_deg and their _u) can change")
+                           "stage calibration (deg_per_step, angle_at_zero_deg and their _u, calibrated_moving) "
+                           "can change")
     if not rig.text:
         raise LogError(f"log {log.path}: holds no rig text to apply --set to")
     return parse_rig(rig.text, rig.source, rig.overrides + overrides)
@@ -159,7 +160,7 @@ def print_result(result: dict) -> None:
     t = Table(title=f"modetick replay of {result['replay_of']}")
     for col in ("", "logged run", "replay"):
         t.add_column(col)
-    for key in ("modes", "crossings", "spacing_steps", "spacing_nm", "length_um"):
+    for key in ("modes", "crossings", "spacing_steps", "spacing_nm", "wavelength_nm", "length_um"):
         if key not in result and key not in logged:
             continue
         fmt = lambda v: "…" if v is None else (f"{v:.6g}" if isinstance(v, float) else str(v))  # noqa: E731

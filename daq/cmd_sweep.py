@@ -189,13 +189,15 @@ def run(args) -> int:
                     status = engine.run(skip)
             else:
                 status = engine.run(skip)
-            if status == "finished":       # (a stopped run's are counted below, interruptibly)
-                engine.finish_counting()   # the last frame shows the last blips counted too
+            with _InterruptsHeld():        # a few ms; the last frame shows the last blips too
+                engine.finish_counting()
             state.status = status          # the dashboard's last frame says how it ended
         if status == "stopped":
             code = EXIT_FOR_SIGNAL.get(stopper.signum, 130)
+            name = signal.Signals(stopper.signum).name
             reason = ("stopped with the q key" if stopper.by_key
-                      else f"stopped by {signal.Signals(stopper.signum).name}")
+                      else f"stopped by Ctrl-C ({name})" if stopper.signum == signal.SIGINT
+                      else f"stopped by {name}")
     except KeyboardInterrupt:
         status, reason, code = "aborted", "aborted by a second interrupt", 130
     except DeviceError as exc:

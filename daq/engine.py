@@ -27,6 +27,7 @@ from drivers.base import DeviceError, Reading
 FLUSH_S = 0.25        # chunks go to the counter (and the dashboard) this often
 COMMIT_S = 1.0        # ... and are committed to the log with the counter state this often
 FLUSH_SAMPLES = 4096
+TIME_RING = 1 << 20   # sample times kept to date the events reported after their samples (8 MB)
 PAUSE_WAIT_S = 5.0    # at a pause, the longest wait for the writer to count what was taken
 RECENT = 900          # readings kept for the dashboard's strip chart
 STALL_READS = 500     # identical readings in a row before the detector is called stuck
@@ -153,14 +154,21 @@ class Engine:
         self.passes_announced = 0     # "pass" events already in the log (a resumed run's)
         self._paused_s = 0.0          # time spent paused (not in the rate)
         self._counted_out = False     # finish_counting done
+        # the times of the last TIME_RING samples logged by this process, by sample index: an
+        # event is reported after its sample (the baseline looks ahead; the first blips are
+        # held until the spacing is known), and its time is its sample's
+        self._t_ring = np.zeros(TIME_RING)
+        self._ring_lo = self._n_written
+        self._t_start: float | None = None
         self._last_value = None
         self._same_count = 0
 
     # -- events -------------------------------------------------------------
     def note(self, kind: str, detail: str, pos: float | None = None) -> None:
-        """Record a non-blip event (pass, warning, fault, status)."""
+        """Record a non-blip event (pass, warning, fault, status), at the time it happens."""
         i = self._n_written + len(self._buf["val"])
-        self._pending_events.append((i, self.state.t_s, kind, pos, None, None, None, None, detail))
+        t = self.state.t_s if self._t_start is None else self.t0_s + (time.monotonic() - self._t_start)
+        self._pending_events.append((i, t, kind, pos, None, None, None, None, detail))
         self.state.events.append((kind, detail))
 
     # -- the loop -------------------------------------------------------------
@@ -376,10 +384,16 @@ class Engine:
         self._counted_out = True
         self.log.mark_provisional_events()
         events = self.counter.finish()
-        rows = [(ev.index, self.state.t_s, ev.kind, ev.position_steps, ev.direction,
+        rows = [(ev.index, self._time_of(ev.index, self.state.t_s), ev.kind, ev.position_steps, ev.direction,
                  ev.mode if ev.kind == "blip" else None, ev.height, ev.width_steps, None) for ev in events]
         self.log.append_events(rows, commit=True)
         self.state.estimate = self.counter.estimate()
+
+    def _time_of(self, i: int, fallback: float) -> float:
+        """The logged time of sample i, if this process logged it and it is still in the ring."""
+        if self._ring_lo <= i < self._n_written and self._n_written - i <= TIME_RING:
+            return float(self._t_ring[i % TIME_RING])
+        return fallback
 
     def _warn_once(self, key: str, detail: str, pos: float | None = None) -> None:
         if key not in self._warned:
@@ -468,10 +482,14 @@ class Engine:
             first_i, t_arr, pos, direction, pass_index, value, spread, aux = chunk
             n = value.size
             events = self.counter.feed(pos, direction, value)
+            j = first_i % TIME_RING                    # the chunk's times into the ring
+            k = min(n, TIME_RING - j)
+            self._t_ring[j:j + k] = t_arr[:k]
+            self._t_ring[:n - k] = t_arr[k:]
             self.log.append_samples(t_arr, pos, direction, pass_index, value, spread, aux, commit=False)
             rows = []
             for ev in events:
-                t_ev = float(t_arr[min(max(ev.index - first_i, 0), n - 1)])
+                t_ev = self._time_of(ev.index, float(t_arr[0]))
                 rows.append((ev.index, t_ev, ev.kind, ev.position_steps, ev.direction,
                              ev.mode if ev.kind == "blip" else None, ev.height, ev.width_steps, None))
                 if ev.kind == "blip":

@@ -649,7 +649,9 @@ def _result_rows(r: dict) -> list[list[str]]:
     bc = r.get("by_count") or {}
     if bc:
         rows.append([f"cross-check: by count ({_fmt(bc.get('intervals'))} intervals over "
-                     f"{bc.get('span_steps', 0):.6g} steps)", *_vu(bc.get("spacing_steps"), bc.get("spacing_steps_u"), "steps")])
+                     f"{bc.get('span_steps', 0):.6g} steps; the mean over the range, where the fit "
+                     "gives the local spacing at the middle mode)",
+                     *_vu(bc.get("spacing_steps"), bc.get("spacing_steps_u"), "steps")])
     return rows
 
 

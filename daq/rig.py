@@ -317,7 +317,7 @@ def reconnect(rig: Rig, items: list[str], source: str = "of the resumed run") ->
         if not old:
             raise RigError(source, f"--set {item}",
                            "a resumed run keeps the rig stored in its log; only where a device is "
-                           f"connected may change ({', '.join(have) or 'this rig has no such key'})")
+                           f"connected may change ({', '.join(have) or 'and this rig has no connection to change'})")
         value = str(value) if isinstance(value, int) and not isinstance(value, bool) else value
         if not isinstance(value, str) or not value:
             raise RigError(source, f"--set {item}", "must be a device path, a port or a resource string")

@@ -173,3 +173,38 @@ def test_the_counter_state_in_the_log_has_seen_every_logged_sample(tmp_path):
     state = json.loads(log.meta("counter_state"))
     assert log.n_samples == 401 and state["_n"] == log.n_samples
     log.close()
+
+
+def test_events_carry_the_time_of_their_sample_and_a_pause_its_length(tmp_path):
+    # The counter reports a blip after its sample (the baseline looks ahead; the first
+    # blips wait for the spacing): its time in the log must be its sample's, not the time
+    # it was written. A pause's "paused" and "resumed" events are as far apart as the pause.
+    import threading
+    import time
+    rig = load_rig(None, ["sweep.settle_s=0.0005", "sweep.passes=2"])
+    s, d, _ = open_devices(rig.sections)
+    log = RunLog.create(tmp_path / "times.db", rig)
+    pause = threading.Event()
+    eng = Engine(rig, s, d, StreamCounter(rig["counter"]), log, LiveState(), pause_flag=pause)
+
+    def watch():
+        deadline = time.monotonic() + 60
+        while eng.state.samples < 3000 and time.monotonic() < deadline:
+            time.sleep(0.005)
+        pause.set()
+        while not eng.state.paused and time.monotonic() < deadline:
+            time.sleep(0.001)
+        time.sleep(0.6)
+        pause.clear()
+    w = threading.Thread(target=watch, daemon=True)
+    w.start()
+    assert eng.run() == "finished"
+    w.join(timeout=60)
+    eng.finish_counting()
+    t = log.read_samples().t_s
+    blips = log.events("blip")
+    assert len(blips) > 100
+    assert all(abs(e["t_s"] - t[e["i"]]) <= 1e-6 for e in blips)      # the log keeps microseconds
+    status = {e["detail"]: e["t_s"] for e in log.events("status")}
+    assert status["resumed"] - status["paused"] >= 0.55
+    log.close()

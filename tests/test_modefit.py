@@ -105,3 +105,11 @@ def test_an_exact_curve_has_no_autocorrelation_to_credit():
     k = np.arange(40.0)
     sp, u, det = fit_spacing(k, 1000.0 + 45.5 * k)
     assert sp == pytest.approx(45.5) and det["residual_lag1"] == 0.0 and det["se_factor"] == 1.0
+
+
+def test_a_stopped_run_is_told_to_finish_its_passes():
+    # a two-pass run stopped in its first pass: the advice is to finish, not to ask for passes
+    stopped = fit_notes({"residual_lag1": 0.0, "se_factor": 1.0, "dof": 80.0}, 1, True, planned_passes=2)
+    assert any("resume the run to finish its passes" in s for s in stopped)
+    single = fit_notes({"residual_lag1": 0.0, "se_factor": 1.0, "dof": 80.0}, 1, True, planned_passes=1)
+    assert any("sweep.passes >= 2" in s for s in single)

@@ -81,6 +81,10 @@ def test_dashboard_in_tmux_then_quit_key(tmp_path):
             time.sleep(0.3)
             screen = _tmux("capture-pane", "-p", "-t", session, "-S", "-60").stdout
         assert "EXIT=130" in screen, screen
+        # the dashboard's last frame counts what the summary below it counts
+        frame = re.findall(r"│ blips seen (\d+)", screen)
+        summary = re.findall(r"\((\d+) blips seen\)", screen)
+        assert frame and summary and frame[-1] == summary[-1], screen
     finally:
         _tmux("kill-session", "-t", session)
     from daq.runlog import RunLog
