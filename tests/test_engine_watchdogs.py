@@ -121,6 +121,28 @@ def test_a_held_up_scan_logs_the_gap_it_leaves(tmp_path):
     assert log.meta("status") != "faulted" and pos.max() >= 4990 and len(pos) > 1000
 
 
+def _run_with_a_pause(eng, pause, after_samples: int, while_paused) -> str:
+    """eng.run(), paused (pause set) once after_samples are shown; while_paused() runs
+    once the engine says it is paused, then the run goes on."""
+    import threading
+    import time
+
+    def watch():
+        deadline = time.monotonic() + 60
+        while eng.state.samples < after_samples and time.monotonic() < deadline:
+            time.sleep(0.005)
+        pause.set()
+        while not eng.state.paused and time.monotonic() < deadline:
+            time.sleep(0.001)
+        while_paused()
+        pause.clear()
+    w = threading.Thread(target=watch, daemon=True)
+    w.start()
+    status = eng.run()
+    w.join(timeout=60)
+    return status
+
+
 class SlowCounter(StreamCounter):
     """The counter, on a computer slow to count (each chunk takes 0.2 s)."""
 
@@ -134,7 +156,6 @@ def test_pause_shows_the_count_of_every_sample_taken(tmp_path):
     # When the dashboard says PAUSED, the writer thread has counted every sample taken
     # before the pause, however slow it is: the count on screen is the count at the pause.
     import threading
-    import time
     rig = load_rig(None, ["sweep.settle_s=0.0005", "sweep.passes=1"])   # ~2 s of sweeping
     s, d, _ = open_devices(rig.sections)
     log = RunLog.create(tmp_path / "run.db", rig)
@@ -142,19 +163,9 @@ def test_pause_shows_the_count_of_every_sample_taken(tmp_path):
     eng = Engine(rig, s, d, SlowCounter(rig["counter"]), log, LiveState(), pause_flag=pause)
     seen = {}
 
-    def watch():
-        deadline = time.monotonic() + 60
-        while eng.state.samples < 500 and time.monotonic() < deadline:
-            time.sleep(0.005)
-        pause.set()
-        while not eng.state.paused and time.monotonic() < deadline:
-            time.sleep(0.001)
+    def at_pause():
         seen["shown"], seen["taken"] = eng.state.samples, eng._n_written
-        pause.clear()
-    w = threading.Thread(target=watch, daemon=True)
-    w.start()
-    eng.run()
-    w.join(timeout=60)
+    _run_with_a_pause(eng, pause, 500, at_pause)
     log.close()
     assert 500 < seen["taken"] < 4000, seen          # paused mid-sweep
     assert seen["shown"] == seen["taken"]
@@ -186,20 +197,7 @@ def test_events_carry_the_time_of_their_sample_and_a_pause_its_length(tmp_path):
     log = RunLog.create(tmp_path / "times.db", rig)
     pause = threading.Event()
     eng = Engine(rig, s, d, StreamCounter(rig["counter"]), log, LiveState(), pause_flag=pause)
-
-    def watch():
-        deadline = time.monotonic() + 60
-        while eng.state.samples < 3000 and time.monotonic() < deadline:
-            time.sleep(0.005)
-        pause.set()
-        while not eng.state.paused and time.monotonic() < deadline:
-            time.sleep(0.001)
-        time.sleep(0.6)
-        pause.clear()
-    w = threading.Thread(target=watch, daemon=True)
-    w.start()
-    assert eng.run() == "finished"
-    w.join(timeout=60)
+    assert _run_with_a_pause(eng, pause, 3000, lambda: time.sleep(0.6)) == "finished"
     eng.finish_counting()
     t = log.read_samples().t_s
     blips = log.events("blip")
