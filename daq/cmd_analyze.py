@@ -126,7 +126,8 @@ def print_result(result: dict) -> None:
         for col in budget[0].keys():
             b.add_column(str(col))
         for row in budget:
-            b.add_row(*[f"{v:.4g}" if isinstance(v, float) else str(v) for v in row.values()])
+            # Text, not markup: "[chip] group_index" is a rig key, not a style
+            b.add_row(*[Text(f"{v:.4g}" if isinstance(v, float) else str(v)) for v in row.values()])
         con.print(b)
     for gap in result.get("gaps") or []:
         con.print(f"[yellow]gap:[/] {gap}")

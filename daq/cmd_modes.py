@@ -148,7 +148,8 @@ def _print_table(mmap: ModeMap, path: str) -> None:
     t = Table(title=f"modes of {path}", caption=(
         f"{len(mmap.rows)} modes; map made moving {'up' if mmap.direction > 0 else 'down'}"
         + (f"; spacing {mmap.spacing_steps:.3f} steps" if mmap.spacing_steps else "")
-        + (f"; backlash {mmap.backlash_steps:.1f} steps" if mmap.backlash_steps is not None else "")))
+        + (f"; backlash {0.0 if abs(mmap.backlash_steps) < 0.05 else mmap.backlash_steps:.1f} steps"
+           if mmap.backlash_steps is not None else "")))
     for col in ("mode", "centre up (steps)", "centre down (steps)", "height", "width (steps)"):
         t.add_column(col, justify="right")
     if mmap.calibrated:

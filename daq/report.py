@@ -665,7 +665,8 @@ def write_markdown(a: AnalyzedLog, figures: list[Path], notes: list[str], path: 
         ["log", f"`{log.path}`"],
         ["started / ended (UTC)", f"{log.meta('started_utc') or 'n/a'} / {log.meta('ended_utc') or 'n/a'}"],
         ["status", (r.get("status") or "n/a") + (f" ({reason})" if reason else "")],
-        ["samples", f"{r.get('samples')} in {len(passes)} passes ({ups} up, {len(passes) - ups} down)"],
+        ["samples", f"{r.get('samples')} in {len(passes)} pass{'es' if len(passes) != 1 else ''} "
+                    f"({ups} up, {len(passes) - ups} down)"],
         ["written by", f"modetick {log.meta('program_version') or '?'}"]])
     md += ["> **Laser safety.** " + SAFETY_TEXT, ""]
 

@@ -116,9 +116,8 @@ def summary_rows(s: dict) -> list[tuple[str, str]]:
     if s.get("length_um") is not None:
         top = (s.get("budget") or [{}])[0]
         share = ""
-        if top.get("input"):
-            word = "mostly" if top["share"] >= 0.5 else "largest part"
-            share = f"   ({word} {top['input']}, {100 * top['share']:.0f} % of u²)"
+        if top.get("input"):       # the budget's shares are of the variance (u squared)
+            share = f"   ({100 * top['share']:.0f} % of it from {top['input']})"
         rows.append(("chip length", f"{_pm(s['length_um'], s.get('length_um_u'))} µm{share}"))
     if s.get("backlash_steps") is not None:
         b = s["backlash_steps"]

@@ -205,3 +205,14 @@ def test_log_without_blips_gives_a_trace_and_says_why_the_rest_is_missing(capsys
     assert "Too few modes for a fit" in out and "one way only" in out
     s = json.loads((tmp_path / "rep" / "summary.json").read_text())
     assert s["modes"] == 0 and s["spacing_steps"] is None
+
+
+def test_analyze_prints_the_budget_with_its_rig_keys_whole(tmp_path):
+    # "[chip] group_index" names a rig key: it must not be eaten as a style tag
+    log = tmp_path / "b.db"
+    r = subprocess.run([sys.executable, "-m", "daq", "sweep", "--log", str(log), "--json", "--set",
+                        "sweep.settle_s=0"], cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    r = subprocess.run([sys.executable, "-m", "daq", "analyze", str(log)], cwd=ROOT,
+                       capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0 and "[chip] group_index" in r.stdout and "[stage] deg_per_step" in r.stdout

@@ -194,7 +194,7 @@ def test_end_of_run_summary_reads_with_units_and_rounded_uncertainties():
                               "budget": [{"input": "[chip] group_index", "share": 0.654}]}))
     assert rows["status"] == "stopped by the q key"
     assert rows["modes counted"].startswith("40") and "41 blips" in rows["modes counted"]
-    assert rows["chip length"] == "801 ± 14 µm   (mostly [chip] group_index, 65 % of u²)"
+    assert rows["chip length"] == "801 ± 14 µm   (65 % of it from [chip] group_index)"
 
 
 def test_the_summary_says_what_its_figures_are():
@@ -204,7 +204,7 @@ def test_the_summary_says_what_its_figures_are():
                               "budget": [{"input": "[stage] angle_at_zero_deg", "share": 0.25}]}))
     # ± is the standard uncertainty; the 95 % interval is spelt out for that row (k u = 0.33)
     assert rows["mode spacing"] == "45.546 ± 0.026 steps   (95 %: ± 0.33 steps)"
-    assert "largest part [stage] angle_at_zero_deg, 25 %" in rows["chip length"]
+    assert "(25 % of it from [stage] angle_at_zero_deg)" in rows["chip length"]
     assert rows["status"] == "finished"
     faulted = dict(summary_rows({"status": "faulted", "reason": "stage /dev/ttyUSB0: port closed"}))
     assert faulted["status"] == "faulted: stage /dev/ttyUSB0: port closed"
