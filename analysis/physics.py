@@ -117,14 +117,18 @@ def chain_inputs(cal: Calibration, spacing_steps: float, spacing_u: float, centr
     """The inputs of length_from_steps (in its argument order) with their standard
     uncertainties, named as the budget shows them."""
     from analysis.uncertainty import Input
-    return [
-        Input("spacing_steps (fit)", spacing_steps, spacing_u, "slope of mode centre vs mode number"),
-        Input("centre_steps", centre_steps, 0.0, "centre of the counted range"),
-        Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
-        Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
-        Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
-        Input("[chip] group_index", group_index, group_index_u, "rig file"),
-    ]
+    return [Input("spacing_steps (fit)", spacing_steps, spacing_u, "slope of mode centre vs mode number"),
+            Input("centre_steps", centre_steps, 0.0, "centre of the counted range"),
+            *_rig_inputs(cal, group_index, group_index_u)]
+
+
+def _rig_inputs(cal: Calibration, group_index: float, group_index_u: float):
+    """The rig file's inputs to the chain: step size, angle offset, groove density, n_g."""
+    from analysis.uncertainty import Input
+    return [Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
+            Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
+            Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
+            Input("[chip] group_index", group_index, group_index_u, "rig file")]
 
 
 C_M_PER_S = 299_792_458.0   # speed of light in vacuum (SI, exact)
@@ -231,10 +235,7 @@ def length_by_count_steps(n_modes: int, first_steps: float, last_steps: float, e
 
     inputs = [Input("first mode centre (steps)", first_steps, end_u_steps, "fit residual rms"),
               Input("last mode centre (steps)", last_steps, end_u_steps, "fit residual rms"),
-              Input("[stage] deg_per_step", cal.deg_per_step, cal.deg_per_step_u, "rig file"),
-              Input("[stage] angle_at_zero_deg", cal.angle_at_zero_deg, cal.angle_at_zero_deg_u, "rig file"),
-              Input("[grating] lines_per_mm", cal.lines_per_mm, cal.lines_per_mm_u, "rig file"),
-              Input("[chip] group_index", group_index, group_index_u, "rig file")]
+              *_rig_inputs(cal, group_index, group_index_u)]
     l0, l1 = ends(first_steps, last_steps, cal.deg_per_step, cal.angle_at_zero_deg, cal.lines_per_mm)
     span_nm = float(abs(l1 - l0))
     L, L_u, budget = gum(length, inputs)

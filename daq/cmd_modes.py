@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from daq.errors import fail
+from daq.numbers import no_negative_zero
 from daq.rig import RigError
 from daq.runlog import LogError, RunLog
 
@@ -148,7 +149,7 @@ def _print_table(mmap: ModeMap, path: str) -> None:
     t = Table(title=f"modes of {path}", caption=(
         f"{len(mmap.rows)} modes; map made moving {'up' if mmap.direction > 0 else 'down'}"
         + (f"; spacing {mmap.spacing_steps:.3f} steps" if mmap.spacing_steps else "")
-        + (f"; backlash {0.0 if abs(mmap.backlash_steps) < 0.05 else mmap.backlash_steps:.1f} steps"
+        + (f"; backlash {no_negative_zero(mmap.backlash_steps):.1f} steps"
            if mmap.backlash_steps is not None else "")))
     for col in ("mode", "centre up (steps)", "centre down (steps)", "height", "width (steps)"):
         t.add_column(col, justify="right")

@@ -6,7 +6,6 @@ LiveState, so drawing never holds up the step loop. The terminal layout fits
 """
 from __future__ import annotations
 
-import math
 import os
 import sys
 import threading
@@ -15,6 +14,7 @@ import time
 from typing import TYPE_CHECKING
 
 from daq.engine import LiveState
+from daq.numbers import no_negative_zero, u_decimals
 
 # rich is imported where a terminal view is drawn: piped or --json runs (replay
 # --fast, overnight runs under a scheduler) start without it.
@@ -86,7 +86,7 @@ def _fmt_u(x, u, digits: int = 2) -> str:
         return "…"
     if u is None or u != u or u <= 0:
         return f"{x:.{digits}f}"
-    dec = min(max(digits, 1 - math.floor(math.log10(u))), 8)
+    dec = min(max(digits, u_decimals(u)), 8)
     if u >= 10:
         dec = 0
     return f"{x:.{dec}f} ± {u:.{dec}f}"
@@ -136,7 +136,7 @@ def render(st: LiveState, width: int = 80) -> Panel:
         right.add_row("chip length", f"{_fmt_u(calib['length_um'], calib['length_um_u'], 0)} µm")
     bl = est.get("backlash_steps")
     if bl is not None:
-        right.add_row("backlash", f"{0.0 if abs(bl) < 0.05 else bl:.1f} steps")   # never "-0.0"
+        right.add_row("backlash", f"{no_negative_zero(bl):.1f} steps")
     arrow = "↑ up" if st.direction > 0 else "↓ down"
     right.add_row("position", f"{st.position_steps} steps  {arrow}  pass {st.pass_index + 1}/{st.passes}")
     right.add_row("progress", f"{st.samples}/{st.total_samples} samples  {st.rate_per_s():.0f}/s  "

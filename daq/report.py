@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 from matplotlib.ticker import MaxNLocator
 
+from daq.numbers import u_decimals
 from daq.runlog import LogError, RunLog, Samples
 
 DPI = 110
@@ -622,7 +623,7 @@ def _vu(v: Any, u: Any, unit: str) -> list[str]:
         return ["n/a", ""]
     if u is None or not math.isfinite(u) or u <= 0:
         return [f"{_fmt(v)} {unit}", ""]
-    digits = max(0, 1 - int(math.floor(math.log10(u))))
+    digits = u_decimals(u)
     return [f"{v:.{digits}f} {unit}", f"{u:.{digits}f} {unit}"]
 
 

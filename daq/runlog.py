@@ -215,15 +215,14 @@ class RunLog:
             fmt = conn.execute("SELECT value FROM meta WHERE key='format'").fetchone()
         except sqlite3.DatabaseError as exc:
             with open(path, "rb") as fh:
-                is_sqlite = fh.read(16) == b"SQLite format 3\x00"
+                head = fh.read(256)
+            is_sqlite = head.startswith(b"SQLite format 3\x00")
             # an SQLite file that opens but has no meta table is some other database
             damaged = is_sqlite and not isinstance(exc, sqlite3.OperationalError)
             what = "a damaged run log (cut short or overwritten?)" if damaged else "not a modetick run log"
-            if not is_sqlite and path.suffix.lower() == ".db":
-                with open(path, "rb") as fh:
-                    head = fh.read(256)
-                if head and all(32 <= b < 127 or b in b"\r\n\t" for b in head):
-                    what += "; it is text: a CSV is read when its name ends in .csv"
+            if head and not is_sqlite and path.suffix.lower() == ".db" and all(
+                    32 <= b < 127 or b in b"\r\n\t" for b in head):
+                what += "; it is text: a CSV is read when its name ends in .csv"
             raise LogError(f"log {path}: {what} ({exc})") from None
         if not fmt or fmt[0] != FORMAT:
             conn.close()

@@ -4,6 +4,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
+from daq.numbers import no_negative_zero, u_decimals
 from daq.runlog import RunLog
 
 # Keys every summary carries, whether or not the rig is calibrated.
@@ -94,7 +95,7 @@ def _pm(v, u, digits: int | None = None) -> str:
         return "…"
     if not u or not math.isfinite(u):
         return f"{v:.6g}"
-    d = digits if digits is not None else max(0, 1 - int(math.floor(math.log10(abs(u)))))
+    d = digits if digits is not None else u_decimals(abs(u))
     return f"{v:.{d}f} ± {u:.{d}f}"
 
 
@@ -120,8 +121,7 @@ def summary_rows(s: dict) -> list[tuple[str, str]]:
             share = f"   ({100 * top['share']:.0f} % of it from {top['input']})"
         rows.append(("chip length", f"{_pm(s['length_um'], s.get('length_um_u'))} µm{share}"))
     if s.get("backlash_steps") is not None:
-        b = s["backlash_steps"]
-        rows.append(("backlash", f"{0.0 if abs(b) < 0.05 else b:.1f} steps"))
+        rows.append(("backlash", f"{no_negative_zero(s['backlash_steps']):.1f} steps"))
     rows.append(("samples", f"{s.get('samples', 0)}   log {s.get('log', '')}"))
     t = s.get("truth")
     if t:

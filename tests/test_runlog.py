@@ -208,3 +208,11 @@ def test_the_summary_says_what_its_figures_are():
     assert rows["status"] == "finished"
     faulted = dict(summary_rows({"status": "faulted", "reason": "stage /dev/ttyUSB0: port closed"}))
     assert faulted["status"] == "faulted: stage /dev/ttyUSB0: port closed"
+
+
+def test_figures_for_people_never_read_minus_zero():
+    from daq.numbers import no_negative_zero, u_decimals
+    assert f"{no_negative_zero(-0.00204):.1f}" == "0.0"       # a backlash of nothing
+    assert f"{no_negative_zero(-0.06):.1f}" == "-0.1"         # a real one keeps its sign
+    assert f"{no_negative_zero(-0.0004, 3):.3f}" == "0.000"
+    assert [u_decimals(u) for u in (13.7, 0.0015, 0.26, 1.0)] == [0, 4, 2, 1]   # two significant digits
